@@ -1,0 +1,280 @@
+"""The ``flapctl`` command.
+
+Subcommands: ``check`` (validate a profile, print derived quantities), ``run`` (one run on the
+SIL rig, logged), ``demo`` (baseline versus morphing on the demo flume rig), ``bench`` (what the
+tick costs on this PC), ``safety`` (the cautions).  Errors in input files print one line naming
+the file, key and value, and exit with status 2.
+"""
+from __future__ import annotations
+
+import argparse
+import datetime as _dt
+import logging
+import math
+import sys
+from pathlib import Path
+
+from . import __version__
+from .console import SAFETY_NOTICE, SAFETY_SHORT, Progress, table
+from .errors import FlapctlError
+
+__all__ = ["main", "build_parser"]
+
+log = logging.getLogger("flapctl")
+PACKAGE_DIR = Path(__file__).resolve().parent
+DEMO_PROFILE = "demo_flume_3blade.toml"
+DEMO_SCHEDULE = "schedules/demo_morph.toml"
+
+
+def _data_path(name: str) -> Path:
+    """A demo file: from the source checkout's hw_profiles/, else the installed copy."""
+    for base in (PACKAGE_DIR.parent / "hw_profiles", PACKAGE_DIR / "data" / "hw_profiles"):
+        p = base / name
+        if p.exists():
+            return p
+    raise FlapctlError(f"demo file {name} not found (looked in hw_profiles/ and the installed package)")
+
+
+# -- check -------------------------------------------------------------------------------------
+def cmd_check(args: argparse.Namespace) -> int:
+    from .derived import rig_figures, schedule_demand
+    from .profile import load_profile, profile_keys
+    from .schedule import Schedule
+
+    if args.keys:
+        print("\n".join(profile_keys()))
+        return 0
+    if args.profile is None:
+        raise FlapctlError("check: give a PROFILE (or --keys to list every profile key)")
+    profile = load_profile(args.profile)
+    fig = rig_figures(profile, tsr=args.tsr)
+    g = profile.geometry
+    print(f"profile {profile.source}: {profile.name} -- valid (schema_version {profile.schema_version})")
+    if profile.description:
+        print(f"  {profile.description}")
+    rows = [
+        ("blades N, radius R, span H, chord c", f"{g.blades}, {g.radius_m:g} m, {g.span_m:g} m, {g.chord_m:g} m"),
+        ("section, flap chord ratio, preset pitch", f"{g.section}, {g.flap_chord_ratio:g}, {g.preset_pitch_deg:+g} deg (toe-out +)"),
+        ("swept area A = 2 R H", f"{fig.swept_area_m2:.4f} m^2"),
+        ("solidity N c / R", f"{fig.solidity_nc_r:.4f}"),
+        ("solidity N c / D", f"{fig.solidity_nc_d:.4f}"),
+        ("solidity N c / (2 pi R)", f"{fig.solidity_nc_2pir:.4f}"),
+        (f"fluid ({fig.fluid.medium}, {fig.fluid.temperature_c:g} degC) density", f"{fig.fluid.density_kg_m3:.3f} kg/m^3"),
+        ("dynamic viscosity", f"{fig.fluid.viscosity_pa_s:.4e} Pa s"),
+        ("kinematic viscosity", f"{fig.fluid.kinematic_viscosity_m2_s:.4e} m^2/s"),
+        ("design flow speed U", f"{fig.design_speed_m_s:g} m/s"),
+        ("available fluid power 1/2 rho A U^3", f"{fig.available_power_w:.3f} W"),
+        ("design TSR", f"{fig.design_tsr:g}"),
+        ("rotor speed at design TSR", f"{fig.rotor_speed_rad_s:.3f} rad/s = {fig.rotor_speed_rpm:.1f} rpm = {fig.rotor_frequency_hz:.3f} Hz"),
+        ("chord Reynolds number TSR U c / nu", f"{fig.chord_reynolds:.3e}"),
+        ("diameter Reynolds number U D / nu", f"{fig.diameter_reynolds:.3e}"),
+    ]
+    if fig.blockage_ratio is not None:
+        rows.append(("blockage ratio A / A_channel", f"{fig.blockage_ratio:.4f}"))
+    rows += [
+        ("speed limit, TSR limit", f"{profile.limits.max_speed_rpm:g} rpm, {profile.limits.max_tsr:g}"),
+        ("controller rate, bus backend", f"{profile.control.rate_hz:g} Hz, {profile.bus.backend}"),
+    ]
+    width = max(len(r[0]) for r in rows)
+    for k, v in rows:
+        print(f"  {k.ljust(width)}  {v}")
+    status = 0
+    if args.schedule:
+        schedule = Schedule.load(args.schedule, profile.blades)
+        schedule.check_travel([s.travel_deg for s in profile.servos])
+        print(f"schedule {schedule.source}: valid"
+              + (f", TSR axis {list(schedule.tsr_axis)}" if schedule.tsr_axis else ""))
+        demand = schedule_demand(profile, schedule, tsr=args.tsr)
+        print(table(["blade", "peak rate deg/s", "rate limit deg/s", "peak deflection deg", "travel deg", "verdict"],
+                    [[str(d.blade), f"{d.peak_rate_deg_s:.1f}", f"{d.rate_limit_deg_s:.1f}",
+                      f"{d.peak_deflection_deg:.2f}", f"{d.travel_deg:.1f}",
+                      "ok" if d.rate_ok and d.travel_ok else "INFEASIBLE"] for d in demand]))
+        bad = [d for d in demand if not d.rate_ok]
+        if bad:
+            status = 1
+            for d in bad:
+                print(f"WARNING: blade {d.blade}: the schedule demands {d.peak_rate_deg_s:.0f} deg/s at TSR "
+                      f"{fig.design_tsr:g}, above the servo rate limit {d.rate_limit_deg_s:.0f} deg/s: the flap "
+                      "cannot follow it (lower the amplitude or the TSR, or use a faster servo)")
+    return status
+
+
+# -- run ---------------------------------------------------------------------------------------
+def _load_run_inputs(profile_path: str, schedule_path: str | None):
+    from .profile import load_profile
+    from .schedule import Schedule
+
+    profile = load_profile(profile_path)
+    if schedule_path:
+        schedule = Schedule.load(schedule_path, profile.blades)
+    else:
+        schedule = Schedule.neutral(profile.blades)
+    schedule.check_travel([s.travel_deg for s in profile.servos])
+    return profile, schedule
+
+
+def _summary_rows(label: str, s) -> list[str]:
+    return [label, f"{s.mean_tsr:.3f}", f"{s.revolutions}", f"{s.shaft_power_w:.4f}",
+            f"{s.actuator_power_w:.4f}", f"{s.cp_gross:.4f}", f"{s.cp_net:.4f}"]
+
+
+SUMMARY_HEADERS = ["run", "TSR", "revs", "shaft W", "actuator W", "Cp gross", "Cp net"]
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from .runner import run_sil
+
+    print(SAFETY_SHORT, file=sys.stderr)
+    profile, schedule = _load_run_inputs(args.profile, args.schedule)
+    if profile.bus.backend != "sim":
+        raise FlapctlError(f"{profile.source}: bus.backend = {profile.bus.backend!r}: `flapctl run` drives "
+                           "the embedded SIL rig in this version; use a profile with backend = \"sim\"")
+    tsr = profile.fluid.design_tsr if args.tsr is None else args.tsr
+    out = _run(profile, schedule, tsr, args, args.out, label=Path(args.out).stem)
+    s = out.summary
+    print(table(SUMMARY_HEADERS, [_summary_rows(Path(args.out).name, s)]))
+    for flag in s.flags:
+        print(f"NOTE: {flag}")
+    print(f"final state {out.state.name}; run log {args.out}")
+    for t, reason, detail in out.trips:
+        print(f"TRIP at {t:.3f} s: {reason}: {detail}")
+    return 0 if not out.trips else 3
+
+
+def _run(profile, schedule, tsr, args, out_path, label):
+    from .runner import run_sil
+
+    return run_sil(profile, schedule, tsr=tsr, duration_s=args.duration, out=out_path,
+                   flow_m_s=args.flow, settle_s=args.settle, seed=args.seed,
+                   progress=Progress(f"{label:>10}"), label=label)
+
+
+# -- demo --------------------------------------------------------------------------------------
+def cmd_demo(args: argparse.Namespace) -> int:
+    from .fluid import fluid_properties
+    from .plots import azimuth_figure
+    from .runlog import open_run
+    from .schedule import Schedule
+
+    print(SAFETY_SHORT, file=sys.stderr)
+    profile_path = args.profile or str(_data_path(DEMO_PROFILE))
+    schedule_path = args.schedule or str(_data_path(DEMO_SCHEDULE))
+    profile, schedule = _load_run_inputs(profile_path, schedule_path)
+    neutral = Schedule.neutral(profile.blades)
+    stamp = _dt.datetime.now().strftime("%Y%m%d-%H%M%S")
+    out_dir = Path(args.out_dir) if args.out_dir else Path(f"flapctl-demo-{stamp}")
+    out_dir.mkdir(parents=True, exist_ok=True)
+    tsr = profile.fluid.design_tsr if args.tsr is None else args.tsr
+    print(f"demo on {profile.name} ({profile.source}) at TSR {tsr:g}, U = "
+          f"{profile.fluid.design_speed_m_s:g} m/s, {args.duration:g} s per run (SIL rig, lockstep)")
+    base = _run(profile, neutral, tsr, args, out_dir / "baseline.h5", "baseline")
+    morph = _run(profile, schedule, tsr, args, out_dir / "morphing.h5", "morphing")
+    b, m = base.summary, morph.summary
+    gain = m.cp_net / b.cp_net - 1.0 if b.cp_net > 0 else float("nan")
+    print()
+    print(table(SUMMARY_HEADERS + ["net gain"],
+                [_summary_rows("baseline (flaps neutral)", b) + ["--"],
+                 _summary_rows(f"morphing ({Path(schedule.source).name})", m) + [f"{gain * 100:+.1f} %"]]))
+    print("Cp net = (shaft energy - servo electrical energy) / (1/2 rho A U^3 t) over whole revolutions, "
+          f"after {args.settle:g} s of settling.")
+    for label, s in (("baseline", b), ("morphing", m)):
+        for flag in s.flags:
+            print(f"NOTE ({label}): {flag}")
+    print("One seeded run per mode: this table alone does not say how sure the gain is; "
+          "see the campaign tools for intervals.")
+    f = profile.fluid
+    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa)
+    g = profile.geometry
+    fig = azimuth_figure([("baseline", open_run(base.path)), ("morphing", open_run(morph.path))],
+                         profile.rotor.inertia_kg_m2, 2 * g.radius_m * g.span_m, fluid.density_kg_m3,
+                         t_from_s=args.settle)
+    png = out_dir / "demo_azimuth.png"
+    fig.savefig(png, dpi=110)
+    print(f"run logs: {base.path}, {morph.path}\nplot: {png}")
+    return 0
+
+
+# -- bench -------------------------------------------------------------------------------------
+def cmd_bench(args: argparse.Namespace) -> int:
+    from .bench import run_bench
+
+    profile_path = args.profile or str(_data_path(DEMO_PROFILE))
+    schedule_path = args.schedule or str(_data_path(DEMO_SCHEDULE))
+    profile, schedule = _load_run_inputs(profile_path, schedule_path)
+    print(run_bench(profile, schedule, rate_hz=args.rate, seconds=args.seconds))
+    return 0
+
+
+def cmd_safety(args: argparse.Namespace) -> int:
+    print(SAFETY_NOTICE)
+    return 0
+
+
+# -- parser ------------------------------------------------------------------------------------
+def _add_run_options(p: argparse.ArgumentParser, duration: float) -> None:
+    p.add_argument("--tsr", type=float, default=None, help="TSR set point (default: the profile's design TSR)")
+    p.add_argument("--duration", type=float, default=duration, metavar="SECONDS", help="run length (s)")
+    p.add_argument("--flow", type=float, default=None, metavar="M_S", help="mean flow speed (default: design)")
+    p.add_argument("--settle", type=float, default=5.0, metavar="SECONDS",
+                   help="seconds left out of the summary while the rotor settles")
+    p.add_argument("--seed", type=int, default=None, help="SIL random seed (default: the profile's)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="flapctl", description="Controller, SIL rig and analysis for cross-flow turbines with "
+        "actively flapped blades.", epilog=SAFETY_SHORT)
+    parser.add_argument("--version", action="version", version=f"flapctl {__version__}")
+    parser.add_argument("-v", "--verbose", action="store_true", help="log details to stderr")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("check", help="validate a rig profile and print derived quantities")
+    p.add_argument("profile", nargs="?", metavar="PROFILE")
+    p.add_argument("--schedule", metavar="FILE", help="also check a flap schedule against the servos")
+    p.add_argument("--tsr", type=float, default=None, help="TSR for the figures (default: design TSR)")
+    p.add_argument("--keys", action="store_true", help="list every profile key with its range")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("run", help="one logged run on the embedded SIL rig")
+    p.add_argument("--profile", required=True, metavar="PROFILE")
+    p.add_argument("--schedule", metavar="FILE", help="flap schedule (default: flaps neutral)")
+    p.add_argument("--out", required=True, metavar="FILE", help="run log to create (HDF5; never overwritten)")
+    _add_run_options(p, 30.0)
+    p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("demo", help="baseline versus morphing schedule on the demo flume rig (SIL)")
+    p.add_argument("--profile", metavar="PROFILE", help="rig profile (default: the demo flume rig)")
+    p.add_argument("--schedule", metavar="FILE", help="morphing schedule (default: the demo schedule)")
+    p.add_argument("--out-dir", metavar="DIR", help="where logs and the plot go (default: a new dated folder)")
+    _add_run_options(p, 30.0)
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("bench", help="measure the tick cost and the lockstep real-time factor here")
+    p.add_argument("--profile", metavar="PROFILE")
+    p.add_argument("--schedule", metavar="FILE")
+    p.add_argument("--rate", type=float, default=1000.0, metavar="HZ")
+    p.add_argument("--seconds", type=float, default=60.0, metavar="N", help="simulated seconds of lockstep")
+    p.set_defaults(func=cmd_bench)
+
+    p = sub.add_parser("safety", help="print the safety cautions")
+    p.set_defaults(func=cmd_safety)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+                        format="%(levelname)s %(name)s: %(message)s")
+    try:
+        return args.func(args)
+    except FlapctlError as exc:
+        print(f"flapctl: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("flapctl: interrupted; logs written so far are kept", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,216 @@
+"""VirtualRig: the software-in-the-loop rig behind flapctl's ports.
+
+Composes the rotor (inertia, bearing friction), the aerodynamic model (:mod:`sim.aero`), one
+servo per blade (:mod:`sim.servo`), the brake, encoder, torque sensor and flow
+(:mod:`sim.drives`).  It implements :class:`flapctl.ports.base.RigPorts`, so the controller
+cannot tell it from a rig; ``step(dt)`` advances the physics and is what a
+:class:`~flapctl.clock.VirtualClock` calls in lockstep.
+
+Rotor: J dw/dt = sum of blade torques - brake torque - friction.  The step is semi-implicit
+(speed first, then angle with the new speed) and every torque is booked with the mid-step speed
+(w_old + w_new)/2, so the energy books balance exactly: aerodynamic work = change of kinetic
+energy + brake work + friction work (``energy`` attribute).
+
+The torque sensor sits between rotor and brake: it reads the brake's reaction torque (so
+bearing friction upstream of it lowers the measured power, as on a real rig).
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from flapctl.ports.base import RigPorts, Sample
+from flapctl.profile import Profile
+
+from .aero import RotorAero, RotorGeometry
+from .drives import (BrakeModel, BrakeParams, EncoderModel, EncoderParams, FlowModel, FlowParams,
+                     FlowSensor, FlowSensorParams, TorqueSensor, TorqueSensorParams)
+from .polar import ThinSectionPolar
+from .servo import ServoModel, ServoParams
+
+__all__ = ["VirtualRig", "EnergyBooks", "servo_params", "rotor_geometry"]
+
+TWO_PI = 2.0 * math.pi
+
+
+def servo_params(servo) -> ServoParams:
+    """The SIL servo model's parameters from one profile [[servos]] entry."""
+    el = servo.electrical
+    return ServoParams(
+        travel_deg=servo.travel_deg, rate_limit_deg_s=servo.rate_limit_deg_s,
+        dead_time_s=servo.dead_time_s, natural_freq_hz=servo.natural_freq_hz,
+        damping=servo.damping, backlash_deg=servo.backlash_deg, kt_nm_a=el.kt_nm_a,
+        resistance_ohm=el.resistance_ohm, gear_ratio=el.gear_ratio,
+        gear_efficiency=el.gear_efficiency, flap_inertia_kg_m2=el.flap_inertia_kg_m2,
+        flap_friction_nm_s=el.flap_friction_nm_s, supply_v=el.supply_v,
+        current_limit_a=el.current_limit_a, quiescent_w=el.quiescent_w,
+        regenerative=el.regenerative)
+
+
+def rotor_geometry(profile: Profile) -> RotorGeometry:
+    g = profile.geometry
+    return RotorGeometry(blades=g.blades, radius_m=g.radius_m, span_m=g.span_m, chord_m=g.chord_m,
+                         preset_pitch_rad=math.radians(g.preset_pitch_deg),
+                         pivot_chord_fraction=g.pivot_chord_fraction,
+                         flap_chord_ratio=g.flap_chord_ratio)
+
+
+@dataclass
+class EnergyBooks:
+    """Exact energy bookkeeping of the rotor (J)."""
+    aero_j: float = 0.0
+    brake_j: float = 0.0
+    friction_j: float = 0.0
+    kinetic_start_j: float = 0.0
+    kinetic_j: float = 0.0
+
+    @property
+    def imbalance_j(self) -> float:
+        return self.aero_j - (self.kinetic_j - self.kinetic_start_j) - self.brake_j - self.friction_j
+
+
+class VirtualRig(RigPorts):
+    """The SIL rig: physics plus the same ports as hardware."""
+
+    reports_servo_power = False
+
+    def __init__(self, profile: Profile, *, density_kg_m3: float, viscosity_m2_s: float,
+                 dt_s: float, flow_m_s: float | None = None, initial_speed_rad_s: float | None = None,
+                 seed: int | None = None, aero: RotorAero | None = None) -> None:
+        g = profile.geometry
+        super().__init__(g.blades, profile.brake.hold_torque_nm)
+        self.profile = profile
+        self.dt = dt_s
+        sim = profile.sim
+        seed = sim.seed if seed is None else seed
+        u0 = profile.fluid.design_speed_m_s if flow_m_s is None else flow_m_s
+        self.aero = aero if aero is not None else RotorAero(
+            rotor_geometry(profile), ThinSectionPolar(g.thickness_ratio, g.flap_chord_ratio),
+            density_kg_m3, viscosity_m2_s, induction=sim.induction, curvature=sim.flow_curvature,
+            dynamic_stall=sim.dynamic_stall)
+        self.servos = [ServoModel(servo_params(s), dt_s) for s in profile.servos]
+        self.reports_servo_power = all(s.reports_power for s in profile.servos)
+        b = profile.brake
+        self.brake = BrakeModel(BrakeParams(max_torque_nm=b.max_torque_nm, min_torque_nm=b.min_torque_nm,
+                                            time_constant_s=b.time_constant_s))
+        e = profile.encoder
+        self.encoder = EncoderModel(EncoderParams(counts_per_rev=e.counts_per_rev,
+                                                  counter_bits=e.counter_bits,
+                                                  index_offset_deg=e.index_offset_deg, seed=seed))
+        ts = profile.sensors.torque
+        self.torque_sensor = TorqueSensor(TorqueSensorParams(
+            range_nm=ts.range_nm, noise_nm=ts.noise_nm, bandwidth_hz=ts.bandwidth_hz,
+            offset_nm=ts.offset_nm, seed=seed + 1))
+        self.flow = FlowModel(FlowParams(mean_m_s=u0, turbulence_intensity=sim.turbulence_intensity,
+                                         integral_time_s=sim.integral_time_s, seed=seed + 2))
+        fs = profile.sensors.flow
+        self.flow_sensor = FlowSensor(FlowSensorParams(range_m_s=fs.range_m_s, noise_m_s=fs.noise_m_s,
+                                                       seed=seed + 3))
+        self.inertia = profile.rotor.inertia_kg_m2
+        self.coulomb = profile.rotor.coulomb_friction_nm
+        self.viscous = profile.rotor.viscous_friction_nm_s
+        self.t_s = 0.0
+        self.angle_rad = 0.0          # true azimuth of blade 0 (unwrapped)
+        if initial_speed_rad_s is None:
+            initial_speed_rad_s = profile.fluid.design_tsr * u0 / g.radius_m
+        self.speed_rad_s = initial_speed_rad_s
+        self.flow_m_s = u0
+        self._brake_cmd = 0.0
+        self._flap_cmd = [0.0] * g.blades
+        self.blade_torque_nm = [0.0] * g.blades
+        self.hinge_nm = [0.0] * g.blades
+        self.thrust_n = 0.0
+        self.energy = EnergyBooks(kinetic_start_j=0.5 * self.inertia * self.speed_rad_s ** 2,
+                                  kinetic_j=0.5 * self.inertia * self.speed_rad_s ** 2)
+        self._sample = Sample(g.blades)
+        self._pitch = TWO_PI / g.blades
+        self.encoder.step(self.angle_rad)
+        self._refresh_aero()
+        self._refresh_every = max(1, int(round(0.05 / dt_s)))
+        self._steps = 0
+        self._fill_sample()
+
+    # -- ports --------------------------------------------------------------------------------
+    def read(self) -> Sample:
+        return self._sample
+
+    def command_flaps(self, flap_deg: Sequence[float]) -> None:
+        cmd = self._flap_cmd
+        for i in range(self.blades):
+            cmd[i] = flap_deg[i]
+
+    def command_brake(self, torque_nm: float) -> None:
+        self._brake_cmd = torque_nm
+
+    def _release(self) -> None:
+        pass
+
+    # -- physics ------------------------------------------------------------------------------
+    def _refresh_aero(self) -> None:
+        u = self.flow.mean_m_s if hasattr(self.flow, "mean_m_s") else self.flow_m_s
+        tsr = self.speed_rad_s * self.profile.geometry.radius_m / u if u > 0 else 0.0
+        self.aero.refresh(tsr, u, None)
+
+    def step(self, dt_s: float) -> None:
+        """Advance the rig by ``dt_s`` with the commands last received."""
+        u = self.flow.step(dt_s)
+        self.flow_m_s = u
+        w = self.speed_rad_s
+        theta = self.angle_rad
+        aero, servos = self.aero, self.servos
+        q_aero = 0.0
+        fx = 0.0
+        pitch = self._pitch
+        bt, hinge = self.blade_torque_nm, self.hinge_nm
+        for i in range(self.blades):
+            servo = servos[i]
+            q, h, f = aero.blade_loads(i, (theta + i * pitch) % TWO_PI, w, u,
+                                       math.radians(servo.angle_deg), dt_s)
+            bt[i] = q
+            hinge[i] = h
+            q_aero += q
+            fx += f
+            servo.step(self._flap_cmd[i], h)
+        self.thrust_n = fx
+        q_brake = self.brake.step(dt_s, self._brake_cmd)
+        # rotor: semi-implicit step; friction opposes motion and cannot reverse it
+        q_drive = q_aero - q_brake * (1.0 if w >= 0 else -1.0)
+        q_fric = self.coulomb * (1.0 if w > 0 else (-1.0 if w < 0 else 0.0)) + self.viscous * w
+        w_new = w + dt_s * (q_drive - q_fric) / self.inertia
+        if w > 0 and w_new < 0 or w < 0 and w_new > 0 or (w == 0 and abs(q_drive) <= self.coulomb):
+            w_new = 0.0          # stiction: the rotor stops rather than reverses
+            q_fric = q_drive             # the friction that held it (stiction)
+        w_mid = 0.5 * (w + w_new)
+        books = self.energy
+        books.aero_j += q_aero * w_mid * dt_s
+        books.brake_j += q_brake * abs(w_mid) * dt_s
+        books.friction_j += q_fric * w_mid * dt_s
+        books.kinetic_j = 0.5 * self.inertia * w_new * w_new
+        self.speed_rad_s = w_new
+        self.angle_rad = theta + w_new * dt_s
+        self.t_s += dt_s
+        self.encoder.step(self.angle_rad)
+        self._steps += 1
+        if self._steps % self._refresh_every == 0:
+            self._refresh_aero()
+        self._brake_torque = q_brake
+        self._fill_sample(dt_s)
+
+    def _fill_sample(self, dt_s: float = 0.0) -> None:
+        s = self._sample
+        s.t_s = self.t_s
+        enc = self.encoder
+        s.counts = enc.counts
+        s.index_latch = enc.index_latch
+        s.index_events = enc.index_events
+        q_true = getattr(self, "_brake_torque", 0.0)
+        s.torque_nm = self.torque_sensor.step(dt_s, q_true) if dt_s > 0 else 0.0
+        s.flow_m_s = self.flow_sensor.step(self.flow_m_s)
+        s.thrust_n = self.thrust_n
+        power = self.reports_servo_power
+        for i, servo in enumerate(self.servos):
+            s.flap_deg[i] = servo.angle_deg
+            if power:
+                s.servo_voltage_v[i] = servo.voltage_v
+                s.servo_current_a[i] = servo.current_a
