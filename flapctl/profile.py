@@ -175,6 +175,20 @@ class Sensors:
 class Limits:
     max_speed_rpm: float = num(0.0, 1e5, lo_open=True)
     max_tsr: float = num(0.0, 20.0, lo_open=True)
+    tracking_error_deg: float = num(0.0, 90.0, lo_open=True, default=8.0,
+                                    doc="flap |command - feedback| that trips when held for the window")
+    tracking_window_s: float = num(0.0, 10.0, lo_open=True, default=0.25)
+    servo_current_a: float = num(0.0, 1e3, lo_open=True, default=1e3,
+                                 doc="trip above this servo current (when servos report it)")
+    encoder_jump_deg: float = num(0.0, 360.0, lo_open=True, default=20.0,
+                                  doc="largest plausible azimuth step in one tick")
+    index_errors: int = num(0, 1000, default=0, doc="index mismatches tolerated before a trip")
+    telemetry_timeout_s: float = num(0.0, 10.0, lo_open=True, default=0.05,
+                                     doc="servo telemetry older than this trips")
+    overrun_trip_consecutive: int = num(1, 100000, default=5,
+                                        doc="consecutive loop overruns that trip (real-time runs)")
+    stop_category: str = choice("controlled", "hold", default="controlled",
+                                doc="on a trip: ramp the brake to hold (controlled) or hold at once")
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -71,6 +71,7 @@ class Controller:
         # safe-state ramp of the flaps: half the servo rate limit
         self._safe_slew = [0.5 * s.rate_limit_deg_s * self.dt for s in profile.servos]
         self._brake_ramp = profile.brake.max_torque_nm * self.dt / 2.0   # full range in 2 s
+        self._hold_at_once = profile.limits.stop_category == "hold"
         self._pitch = TWO_PI / n
         self.cmd = [0.0] * n
         self.power = [0.0] * n
@@ -113,10 +114,12 @@ class Controller:
         tsr = omega * self.radius / flow if flow > 1e-9 else 0.0
         self.tsr = tsr
         sup = self.supervisor
-        sup.check(s.t_s, omega, tsr, s.torque_nm, flow)
-        state = sup.state
         cmd = self.cmd
         n = self.blades
+        if sup.check(s.t_s, omega, tsr, s.torque_nm, flow):
+            if sup.check_encoder(s.t_s, est.last_step_counts, est.index_errors):
+                sup.check_servos(s.t_s, dt, cmd, s.flap_deg, s.servo_current_a, s.telemetry_age_s)
+        state = sup.state
         if state == State.RUNNING:
             lead = self.lead(omega)
             at = self.table.at
@@ -143,10 +146,14 @@ class Controller:
                 step = slew[i]
                 cmd[i] = prev - step if prev > step else (prev + step if prev < -step else 0.0)
         self.ports.command_flaps(cmd)
+        if state != State.FAULT:
+            self.ports.heartbeat()          # a dead or faulted controller goes silent
         if self.tick % self.brake_every == 0:
             if state == State.ARMED or state == State.RUNNING:
                 b = self.brake.update(omega, flow, dt * self.brake_every)
             elif state == State.SAFE:
+                b = self.ports.brake_hold_nm
+            elif state == State.FAULT and self._hold_at_once:
                 b = self.ports.brake_hold_nm
             else:   # STOPPING / FAULT: ramp to the holding torque
                 hold = self.ports.brake_hold_nm

@@ -43,11 +43,21 @@ class Supervisor:
     """Checks the interlocks every tick and owns the run state."""
 
     def __init__(self, max_speed_rad_s: float, max_tsr: float, torque_range_nm: float,
-                 flow_range_m_s: float, on_transition=None) -> None:
+                 flow_range_m_s: float, on_transition=None, *, blades: int = 1,
+                 tracking_error_deg: float = 1e9, tracking_window_s: float = 1.0,
+                 servo_current_a: float = 1e9, encoder_jump_counts: int = 1 << 62,
+                 index_errors: int = 0, telemetry_timeout_s: float = 1e9) -> None:
         self.max_speed = max_speed_rad_s
         self.max_tsr = max_tsr
         self.torque_range = torque_range_nm
         self.flow_range = flow_range_m_s
+        self.tracking_error_deg = tracking_error_deg
+        self.tracking_window_s = tracking_window_s
+        self.servo_current_a = servo_current_a
+        self.encoder_jump_counts = encoder_jump_counts
+        self.index_errors_allowed = index_errors
+        self.telemetry_timeout_s = telemetry_timeout_s
+        self._track_s = [0.0] * blades
         self.state = State.SAFE
         self.trip_reason = ""
         self.trips: list[tuple[float, str, str]] = []
@@ -55,8 +65,14 @@ class Supervisor:
 
     @classmethod
     def from_profile(cls, profile, on_transition=None) -> "Supervisor":
-        return cls(profile.limits.max_speed_rpm * math.pi / 30.0, profile.limits.max_tsr,
-                   profile.sensors.torque.range_nm, profile.sensors.flow.range_m_s, on_transition)
+        lim = profile.limits
+        jump = int(lim.encoder_jump_deg / 360.0 * profile.encoder.counts_per_rev)
+        return cls(lim.max_speed_rpm * math.pi / 30.0, lim.max_tsr,
+                   profile.sensors.torque.range_nm, profile.sensors.flow.range_m_s, on_transition,
+                   blades=profile.blades, tracking_error_deg=lim.tracking_error_deg,
+                   tracking_window_s=lim.tracking_window_s, servo_current_a=lim.servo_current_a,
+                   encoder_jump_counts=max(1, jump), index_errors=lim.index_errors,
+                   telemetry_timeout_s=lim.telemetry_timeout_s)
 
     def _go(self, t_s: float, new: State, reason: str) -> None:
         old = self.state
@@ -105,5 +121,45 @@ class Supervisor:
             return False
         if not (tsr <= self.max_tsr) and flow_m_s > 0.0:
             self.trip(t_s, "overspeed_tsr", f"TSR {tsr:.2f} above {self.max_tsr:g}")
+            return False
+        return True
+
+    def check_servos(self, t_s: float, dt_s: float, command_deg, feedback_deg, current_a,
+                     telemetry_age_s: float) -> bool:
+        """Flap tracking (held for the window), over-current, stale telemetry."""
+        if self.state == State.FAULT:
+            return False
+        if not (telemetry_age_s <= self.telemetry_timeout_s):
+            self.trip(t_s, "telemetry_timeout", f"servo telemetry {telemetry_age_s * 1e3:.0f} ms old "
+                      f"(limit {self.telemetry_timeout_s * 1e3:.0f} ms)")
+            return False
+        track = self._track_s
+        for i in range(len(track)):
+            err = command_deg[i] - feedback_deg[i]
+            if not (-self.tracking_error_deg < err < self.tracking_error_deg):   # NaN trips too
+                track[i] += dt_s
+                if track[i] >= self.tracking_window_s:
+                    self.trip(t_s, "flap_tracking", f"blade {i}: command {command_deg[i]:.2f} deg, "
+                              f"feedback {feedback_deg[i]!r} deg for {track[i]:.3f} s")
+                    return False
+            else:
+                track[i] = 0.0
+            amps = current_a[i]
+            if amps > self.servo_current_a or -amps > self.servo_current_a:
+                self.trip(t_s, "servo_overcurrent", f"blade {i}: {amps:.2f} A above "
+                          f"{self.servo_current_a:g} A")
+                return False
+        return True
+
+    def check_encoder(self, t_s: float, step_counts: int, index_errors: int) -> bool:
+        """Implausible jumps in one tick and index pulses not one revolution apart."""
+        if self.state == State.FAULT:
+            return False
+        if step_counts > self.encoder_jump_counts or -step_counts > self.encoder_jump_counts:
+            self.trip(t_s, "encoder_jump", f"{step_counts} counts in one tick (limit "
+                      f"{self.encoder_jump_counts})")
+            return False
+        if index_errors > self.index_errors_allowed:
+            self.trip(t_s, "encoder_index", f"{index_errors} index pulse(s) not one revolution apart")
             return False
         return True
