@@ -122,15 +122,17 @@ SUMMARY_HEADERS = ["run", "TSR", "revs", "shaft W", "actuator W", "Cp gross", "C
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from .runner import run_sil
-
     print(SAFETY_SHORT, file=sys.stderr)
     profile, schedule = _load_run_inputs(args.profile, args.schedule)
     if profile.bus.backend != "sim":
         raise FlapctlError(f"{profile.source}: bus.backend = {profile.bus.backend!r}: `flapctl run` drives "
                            "the embedded SIL rig in this version; use a profile with backend = \"sim\"")
     tsr = profile.fluid.design_tsr if args.tsr is None else args.tsr
-    out = _run(profile, schedule, tsr, args, args.out, label=Path(args.out).stem)
+    faults = None
+    if args.faults:
+        from sim.faults import load_scenario
+        faults = load_scenario(args.faults, profile.blades)
+    out = _run(profile, schedule, tsr, args, args.out, label=Path(args.out).stem, faults=faults)
     s = out.summary
     print(table(SUMMARY_HEADERS, [_summary_rows(Path(args.out).name, s)]))
     for flag in s.flags:
@@ -141,12 +143,12 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0 if not out.trips else 3
 
 
-def _run(profile, schedule, tsr, args, out_path, label):
+def _run(profile, schedule, tsr, args, out_path, label, faults=None):
     from .runner import run_sil
 
     return run_sil(profile, schedule, tsr=tsr, duration_s=args.duration, out=out_path,
                    flow_m_s=args.flow, settle_s=args.settle, seed=args.seed,
-                   progress=Progress(f"{label:>10}"), label=label)
+                   progress=Progress(f"{label:>10}"), label=label, faults=faults)
 
 
 # -- demo --------------------------------------------------------------------------------------
@@ -191,6 +193,164 @@ def cmd_demo(args: argparse.Namespace) -> int:
     png = out_dir / "demo_azimuth.png"
     fig.savefig(png, dpi=110)
     print(f"run logs: {base.path}, {morph.path}\nplot: {png}")
+    return 0
+
+
+# -- sim studies -------------------------------------------------------------------------------
+def _floats(text: str, name: str) -> list[float]:
+    """'1.0:3.5:0.25' (start:stop:step, inclusive) or '1,1.5,2'."""
+    try:
+        if ":" in text:
+            a, b, c = (float(v) for v in text.split(":"))
+            if c <= 0 or b < a:
+                raise ValueError
+            n = int(math.floor((b - a) / c + 1e-9)) + 1
+            return [round(a + k * c, 10) for k in range(n)]
+        return [float(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise FlapctlError(f"--{name} = {text!r}: expected START:STOP:STEP or a comma list of numbers")
+
+
+def _sim_setup(args):
+    from .fluid import fluid_properties
+    from .profile import load_profile
+    from .schedule import Schedule
+
+    profile = load_profile(args.profile)
+    f = profile.fluid
+    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
+    schedule = Schedule.load(args.schedule, profile.blades) if getattr(args, "schedule", None) else None
+    flow = f.design_speed_m_s if args.flow is None else args.flow
+    return profile, fluid, schedule, flow
+
+
+def _out_png(args, default: str) -> Path:
+    out = Path(args.out or default)
+    if out.exists():
+        raise FlapctlError(f"{out}: exists already; give another --out (files are never overwritten)")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    return out
+
+
+def cmd_sim_sweep_tsr(args: argparse.Namespace) -> int:
+    import matplotlib.pyplot as plt
+    from sim.studies import model_for, sweep_tsr
+
+    profile, fluid, schedule, flow = _sim_setup(args)
+    tsrs = _floats(args.tsr, "tsr")
+    model = model_for(profile, fluid.density_kg_m3, fluid.kinematic_viscosity_m2_s,
+                      induction=args.induction)
+    fixed = sweep_tsr(model, flow, tsrs, progress=Progress("  fixed"))
+    curves = [("fixed flaps (neutral)", fixed)]
+    if schedule is not None:
+        curves.append((f"schedule {Path(schedule.source).name}",
+                       sweep_tsr(model, flow, tsrs, schedule, progress=Progress("  sched"))))
+    headers = ["TSR"] + [f"Cp {name}" for name, _ in curves]
+    rows = []
+    for k, tsr in enumerate(tsrs):
+        rows.append([f"{tsr:.2f}"] + [f"{c[k].cp:.4f}" + ("" if c[k].valid else " *") for _, c in curves])
+    print(f"steady Cp-TSR of the SIL model ({model.induction}, {profile.name}, U = {flow:g} m/s, "
+          f"pitch {profile.geometry.preset_pitch_deg:+g} deg)")
+    print(table(headers, rows))
+    if any(not p.valid for _, c in curves for p in c):
+        print("* outside the streamtube model's validity (upwind induction >= 0.5): read with care")
+    for name, c in curves:
+        best = max(c, key=lambda p: p.cp)
+        print(f"peak Cp {best.cp:.4f} at TSR {best.tsr:.2f} ({name})")
+    fig, ax = plt.subplots(figsize=(7, 4.5))
+    for name, c in curves:
+        ax.plot([p.tsr for p in c], [p.cp for p in c], "o-", label=name, ms=3)
+        bad = [p for p in c if not p.valid]
+        if bad:
+            ax.plot([p.tsr for p in bad], [p.cp for p in bad], "rx", ms=7)
+    ax.axhline(0, color="0.6", lw=0.8)
+    ax.set_xlabel("TSR")
+    ax.set_ylabel("Cp (steady, model)")
+    ax.set_title(f"{profile.name}: Cp versus TSR ({model.induction}); x = outside model validity")
+    ax.grid(alpha=0.3)
+    ax.legend()
+    out = _out_png(args, f"cp_tsr_{profile.name}.png")
+    fig.savefig(out, dpi=110)
+    print(f"plot: {out}")
+    return 0
+
+
+def cmd_sim_pitch_sweep(args: argparse.Namespace) -> int:
+    import matplotlib.pyplot as plt
+    from sim.studies import pitch_sweep
+
+    profile, fluid, _, flow = _sim_setup(args)
+    pitches = _floats(args.pitch, "pitch")
+    tsrs = _floats(args.tsr, "tsr")
+    res = pitch_sweep(profile, fluid.density_kg_m3, fluid.kinematic_viscosity_m2_s, flow, pitches,
+                      tsrs, progress=Progress("  pitch"))
+    rows = []
+    best_overall = None
+    for p, curve in res.items():
+        best = max(curve, key=lambda c: c.cp)
+        rows.append([f"{p:+.1f}", f"{best.cp:.4f}", f"{best.tsr:.2f}"])
+        if best_overall is None or best.cp > best_overall[1].cp:
+            best_overall = (p, best)
+    print(f"peak Cp versus fixed preset pitch (toe-out +), flaps neutral, {profile.name}, U = {flow:g} m/s")
+    print(table(["pitch deg", "peak Cp", "at TSR"], rows))
+    print(f"best fixed pitch: {best_overall[0]:+.1f} deg (Cp {best_overall[1].cp:.4f} at TSR "
+          f"{best_overall[1].tsr:.2f})")
+    fig, (a1, a2) = plt.subplots(1, 2, figsize=(11, 4.5))
+    for p, curve in res.items():
+        a1.plot([c.tsr for c in curve], [c.cp for c in curve], label=f"{p:+.0f} deg")
+    a1.set_xlabel("TSR"); a1.set_ylabel("Cp"); a1.grid(alpha=0.3); a1.legend(fontsize=7)
+    a1.axhline(0, color="0.6", lw=0.8)
+    a2.plot(list(res), [max(c.cp for c in curve) for curve in res.values()], "o-")
+    a2.set_xlabel("preset pitch (deg, toe-out +)"); a2.set_ylabel("peak Cp"); a2.grid(alpha=0.3)
+    fig.suptitle(f"{profile.name}: best fixed pitch")
+    fig.tight_layout()
+    out = _out_png(args, f"pitch_sweep_{profile.name}.png")
+    fig.savefig(out, dpi=110)
+    print(f"plot: {out}")
+    return 0
+
+
+def cmd_sim_convergence(args: argparse.Namespace) -> int:
+    import matplotlib.pyplot as plt
+    from sim.studies import convergence
+
+    profile, fluid, schedule, flow = _sim_setup(args)
+    tsr = profile.fluid.design_tsr if args.tsr is None else float(args.tsr)
+    steps = _floats(args.steps, "steps")
+    tubes = [int(v) for v in _floats(args.tubes, "tubes")]
+    rows = convergence(profile, fluid.density_kg_m3, fluid.kinematic_viscosity_m2_s, tsr, flow,
+                       steps, tubes, schedule, progress=Progress("  conv"))
+    ref = rows[-1] if rows else None
+    for r in rows:
+        if r.azimuth_step_deg == min(steps) and r.tubes_per_half == max(tubes):
+            ref = r
+    print(f"independence study at TSR {tsr:g}, U = {flow:g} m/s ({profile.sim.induction} induction; "
+          f"reference: {ref.azimuth_step_deg:g} deg, {ref.tubes_per_half} tubes per half)")
+    print(table(["step deg", "tubes/half", "Cp", "dCp vs ref %", "peak torque N m", "dQ %", "solve ms"],
+                [[f"{r.azimuth_step_deg:g}", str(r.tubes_per_half), f"{r.cp:.5f}",
+                  f"{(r.cp / ref.cp - 1) * 100:+.3f}", f"{r.peak_torque_nm:.4f}",
+                  f"{(r.peak_torque_nm / ref.peak_torque_nm - 1) * 100:+.3f}", f"{r.solve_ms:.1f}"]
+                 for r in rows]))
+    ok = [r for r in rows if abs(r.cp / ref.cp - 1) < 0.001 and abs(r.peak_torque_nm / ref.peak_torque_nm - 1) < 0.005]
+    if ok:
+        cheapest = min(ok, key=lambda r: r.solve_ms)
+        print(f"cheapest setting within 0.1 % Cp and 0.5 % peak torque of the reference: "
+              f"{cheapest.azimuth_step_deg:g} deg, {cheapest.tubes_per_half} tubes per half "
+              f"({cheapest.solve_ms:.1f} ms); the SIL rig uses 36 tubes per half (5 deg)")
+    fig, (a1, a2) = plt.subplots(1, 2, figsize=(11, 4.5))
+    for n_t in tubes:
+        sel = [r for r in rows if r.tubes_per_half == n_t]
+        a1.plot([r.azimuth_step_deg for r in sel], [r.cp for r in sel], "o-", label=f"{n_t} tubes/half")
+        a2.plot([r.azimuth_step_deg for r in sel], [r.peak_torque_nm for r in sel], "o-", label=f"{n_t}")
+    for a, lab in ((a1, "Cp"), (a2, "peak rotor torque (N m)")):
+        a.set_xscale("log"); a.invert_xaxis(); a.set_xlabel("azimuth step (deg)"); a.set_ylabel(lab)
+        a.grid(alpha=0.3)
+    a1.legend(fontsize=8)
+    fig.suptitle(f"{profile.name}: model independence study at TSR {tsr:g}")
+    fig.tight_layout()
+    out = _out_png(args, f"convergence_{profile.name}.png")
+    fig.savefig(out, dpi=110)
+    print(f"plot: {out}")
     return 0
 
 
@@ -239,6 +399,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--profile", required=True, metavar="PROFILE")
     p.add_argument("--schedule", metavar="FILE", help="flap schedule (default: flaps neutral)")
     p.add_argument("--out", required=True, metavar="FILE", help="run log to create (HDF5; never overwritten)")
+    p.add_argument("--faults", metavar="FILE", help="fault scenario (TOML) to inject into the SIL rig")
     _add_run_options(p, 30.0)
     p.set_defaults(func=cmd_run)
 
@@ -248,6 +409,34 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out-dir", metavar="DIR", help="where logs and the plot go (default: a new dated folder)")
     _add_run_options(p, 30.0)
     p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("sim", help="steady studies of the SIL rotor model (Cp-TSR, pitch, convergence)")
+    simsub = p.add_subparsers(dest="sim_command", required=True, metavar="STUDY")
+    q = simsub.add_parser("sweep-tsr", help="steady Cp-TSR curve, fixed flaps and optionally a schedule")
+    q.add_argument("profile", metavar="PROFILE")
+    q.add_argument("--schedule", metavar="FILE")
+    q.add_argument("--tsr", default="0.5:4.0:0.25", help="START:STOP:STEP or a list (default 0.5:4.0:0.25)")
+    q.add_argument("--induction", choices=("dmst", "single", "none"), default=None,
+                   help="induction model (default: the profile's sim.induction)")
+    q.add_argument("--flow", type=float, default=None, metavar="M_S")
+    q.add_argument("--out", metavar="PNG")
+    q.set_defaults(func=cmd_sim_sweep_tsr)
+    q = simsub.add_parser("pitch-sweep", help="peak Cp versus fixed preset pitch")
+    q.add_argument("profile", metavar="PROFILE")
+    q.add_argument("--pitch", default="0:15:1", help="pitches in deg (default 0:15:1)")
+    q.add_argument("--tsr", default="1.0:3.5:0.25")
+    q.add_argument("--flow", type=float, default=None, metavar="M_S")
+    q.add_argument("--out", metavar="PNG")
+    q.set_defaults(func=cmd_sim_pitch_sweep)
+    q = simsub.add_parser("convergence", help="Cp and peak torque versus azimuth step and tube count")
+    q.add_argument("profile", metavar="PROFILE")
+    q.add_argument("--schedule", metavar="FILE")
+    q.add_argument("--tsr", type=float, default=None)
+    q.add_argument("--steps", default="4,2,1,0.5", help="azimuth steps in deg")
+    q.add_argument("--tubes", default="9,18,36,72,144", help="streamtubes per half")
+    q.add_argument("--flow", type=float, default=None, metavar="M_S")
+    q.add_argument("--out", metavar="PNG")
+    q.set_defaults(func=cmd_sim_convergence)
 
     p = sub.add_parser("bench", help="measure the tick cost and the lockstep real-time factor here")
     p.add_argument("--profile", metavar="PROFILE")

@@ -46,6 +46,8 @@ class AzimuthEstimator:
         self._offset_rad = math.radians(index_offset_deg)
         self.kp, self.ki = observer_gains(bandwidth_hz, damping)
         self.dt = dt_s
+        # start-up window: a tenth of the observer's time constant, at least two ticks
+        self._start_ticks = max(2, int(round(0.1 / (TWO_PI * bandwidth_hz) / dt_s)) + 2, int(0.01 / dt_s))
         self.reset()
 
     def reset(self) -> None:
@@ -64,6 +66,9 @@ class AzimuthEstimator:
         self.theta_hat = self.angle_rad
         self.speed_rad_s = 0.0
         self._integ = 0.0
+        self._start_total = 0
+        self._ticks = 0
+        self.ready = False                # speed known (after the start-up window)
 
     def update(self, counts: int, index_latch: int | None, index_events: int) -> None:
         """Advance one tick with the newest counter reading."""
@@ -107,7 +112,20 @@ class AzimuthEstimator:
         angle = self._offset_rad + (total - self._home_total) * self._rad_per_count
         self.angle_rad = angle
         self.azimuth_rad = angle % TWO_PI
-        # angle-tracking observer
+        # start-up: average speed by count differencing over a short window, then hand the
+        # observer a matching state, so that it starts without a transient
+        if not self.ready:
+            self._ticks += 1
+            if self._ticks == 1:
+                self._start_total = total
+            self.theta_hat = angle
+            if self._ticks > 1:
+                self.speed_rad_s = (total - self._start_total) * self._rad_per_count / (
+                    (self._ticks - 1) * self.dt)
+            if self._ticks > self._start_ticks:
+                self._integ = self.speed_rad_s
+                self.ready = True
+            return
         e = angle - self.theta_hat
         self._integ += self.ki * e * self.dt
         w = self.kp * e + self._integ

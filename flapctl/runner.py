@@ -38,6 +38,13 @@ class RunOutcome:
     rig: object
 
 
+def _injector(scenario):
+    if scenario is None:
+        return None
+    from sim.faults import FaultInjector   # the SIL rig's own fault injection
+    return FaultInjector(scenario)
+
+
 def settle_revolutions(profile: Profile, tsr: float, flow_m_s: float, settle_s: float) -> int:
     """Whole revolutions in ``settle_s`` at this operating point (skipped in the summary)."""
     rev_s = 2.0 * math.pi * profile.geometry.radius_m / (tsr * flow_m_s)
@@ -59,8 +66,11 @@ def summary_dict(summary: RunEnergy) -> dict:
 def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: float,
             out: str | Path | None, flow_m_s: float | None = None, settle_s: float = 3.0,
             lead: LeadModel | None = None, seed: int | None = None, progress=None,
-            label: str = "", chunk_rows: int | None = None) -> RunOutcome:
-    """Run the controller in lockstep against the SIL rig; write ``out`` when given."""
+            label: str = "", chunk_rows: int | None = None, faults=None) -> RunOutcome:
+    """Run the controller in lockstep against the SIL rig; write ``out`` when given.
+
+    ``faults`` is a fault scenario (``sim.faults.Scenario``) to inject into the rig.
+    """
     rig_cls = backend_class("sim", profile.source)
     f = profile.fluid
     fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
@@ -69,7 +79,8 @@ def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: flo
     dt = period_ns * 1e-9
     rig = rig_cls(profile, density_kg_m3=fluid.density_kg_m3,
                   viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=dt, flow_m_s=u,
-                  initial_speed_rad_s=tsr * u / profile.geometry.radius_m, seed=seed)
+                  initial_speed_rad_s=tsr * u / profile.geometry.radius_m, seed=seed,
+                  faults=_injector(faults))
     clock = VirtualClock(period_ns, rig.step)
     lead = lead if lead is not None else LeadModel.from_control(profile.control)
     runlog = None
@@ -84,6 +95,7 @@ def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: flo
             "density_kg_m3": fluid.density_kg_m3,
             "kinematic_viscosity_m2_s": fluid.kinematic_viscosity_m2_s,
             "command_line": " ".join(sys.argv),
+            "fault_scenario": faults.name if faults is not None else "",
         }
         runlog = RunLog(out, profile.blades, meta,
                         chunk_rows=chunk_rows or int(profile.control.rate_hz))

@@ -57,6 +57,7 @@ class Controller:
         self.brake.set_tsr(tsr)
         self.brake_every = profile.brake.loop.period_ticks
         self.brake_nm = 0.0
+        self._brake_sent = False      # the first tick always sends a brake command
         self.runlog = runlog
         self.supervisor = Supervisor.from_profile(profile, on_transition=self._on_transition)
         self.reports_power = ports.reports_servo_power
@@ -86,9 +87,7 @@ class Controller:
     def _on_transition(self, t_s: float, old: State, new: State, reason: str) -> None:
         if self.runlog is not None:
             self.runlog.event(t_s, "state", f"{old.name} -> {new.name}: {reason}")
-        if new == State.ARMED and not self.brake.active:
-            self.brake.start(self.estimator.speed_rad_s, self.flow_m_s, self.brake_nm)
-        elif new in (State.STOPPING, State.FAULT, State.SAFE):
+        if new in (State.STOPPING, State.FAULT, State.SAFE):
             self.brake.stop()
 
     def command(self, name: str, reason: str = "operator") -> bool:
@@ -150,7 +149,12 @@ class Controller:
             self.ports.heartbeat()          # a dead or faulted controller goes silent
         if self.tick % self.brake_every == 0:
             if state == State.ARMED or state == State.RUNNING:
-                b = self.brake.update(omega, flow, dt * self.brake_every)
+                if not self.brake.active:
+                    if est.ready:       # engage once the speed is known: bumpless
+                        self.brake.start(omega, flow, self.brake_nm)
+                    b = self.brake_nm
+                else:
+                    b = self.brake.update(omega, flow, dt * self.brake_every)
             elif state == State.SAFE:
                 b = self.ports.brake_hold_nm
             elif state == State.FAULT and self._hold_at_once:
@@ -162,9 +166,10 @@ class Controller:
                 b = min(hold, b + step) if b < hold else max(hold, b - step)
                 if state == State.STOPPING and abs(omega) < 0.05 and all(c == 0.0 for c in cmd):
                     sup.stopped(s.t_s)
-            if b != self.brake_nm:
+            if b != self.brake_nm or not self._brake_sent:
                 self.ports.command_brake(b)
                 self.brake_nm = b
+                self._brake_sent = True
         power = self.power
         if self.reports_power:
             volts, amps, regen = s.servo_voltage_v, s.servo_current_a, self._regen

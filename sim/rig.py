@@ -18,6 +18,8 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+
+import numpy as np
 from dataclasses import dataclass
 
 from flapctl.ports.base import RigPorts, Sample
@@ -77,7 +79,8 @@ class VirtualRig(RigPorts):
 
     def __init__(self, profile: Profile, *, density_kg_m3: float, viscosity_m2_s: float,
                  dt_s: float, flow_m_s: float | None = None, initial_speed_rad_s: float | None = None,
-                 seed: int | None = None, aero: RotorAero | None = None) -> None:
+                 seed: int | None = None, aero: RotorAero | None = None,
+                 faults=None, servo_watchdog_s: float = 0.1) -> None:
         g = profile.geometry
         super().__init__(g.blades, profile.brake.hold_torque_nm)
         self.profile = profile
@@ -123,8 +126,21 @@ class VirtualRig(RigPorts):
         self.thrust_n = 0.0
         self.energy = EnergyBooks(kinetic_start_j=0.5 * self.inertia * self.speed_rad_s ** 2,
                                   kinetic_j=0.5 * self.inertia * self.speed_rad_s ** 2)
+        self.faults = faults
+        self.servo_watchdog_s = servo_watchdog_s
+        self._last_command_t = 0.0
         self._sample = Sample(g.blades)
         self._pitch = TWO_PI / g.blades
+        nbins = 72
+        self._flap_bins = [[0.0] * nbins for _ in range(g.blades)]
+        self._flap_count = [[0] * nbins for _ in range(g.blades)]
+        self._flap_done: list[list[float]] | None = None   # per-bin means of the last whole revolution
+        self._nbins = nbins
+        self._aero_key = None
+        self._speed_sum = 0.0
+        self._speed_n = 0
+        self._revs_since_solve = 0
+        self._rev_seen = 0
         self.encoder.step(self.angle_rad)
         self._refresh_aero()
         self._refresh_every = max(1, int(round(0.05 / dt_s)))
@@ -136,24 +152,71 @@ class VirtualRig(RigPorts):
         return self._sample
 
     def command_flaps(self, flap_deg: Sequence[float]) -> None:
+        if self.faults is not None and self.faults.drop_command():
+            return
+        self._last_command_t = self.t_s
         cmd = self._flap_cmd
         for i in range(self.blades):
             cmd[i] = flap_deg[i]
 
     def command_brake(self, torque_nm: float) -> None:
+        if self.faults is not None and self.faults.drop_command():
+            return
         self._brake_cmd = torque_nm
 
     def _release(self) -> None:
         pass
 
     # -- physics ------------------------------------------------------------------------------
+    def _flap_function(self):
+        """The flap motion of the last revolution, per blade, as the induction model's input.
+
+        Each blade's measured flap angle is averaged in azimuth bins of its own azimuth while the
+        rig runs; the induction is then solved for the flaps as they really moved.
+        """
+        done = self._flap_done
+        if done is None:
+            return None
+        nb = len(done[0])
+        tables = [np.radians(np.array(row + row[:1])) for row in done]
+        centres = (np.arange(nb + 1) + 0.5) * TWO_PI / nb
+
+        def flap(theta, blade, _t=tables, _c=centres):
+            th = np.mod(np.asarray(theta, dtype=float) - _c[0], TWO_PI) + _c[0]
+            return np.interp(th, _c, _t[blade])
+        return flap
+
     def _refresh_aero(self) -> None:
-        u = self.flow.mean_m_s if hasattr(self.flow, "mean_m_s") else self.flow_m_s
-        tsr = self.speed_rad_s * self.profile.geometry.radius_m / u if u > 0 else 0.0
-        self.aero.refresh(tsr, u, None)
+        u = self.flow.mean_m_s
+        # the speed averaged over the revolution so far: the torque ripple is phase-locked to the
+        # azimuth, so an instantaneous speed would bias the induction's operating point
+        speed = self._speed_sum / self._speed_n if self._speed_n else self.speed_rad_s
+        tsr = speed * self.profile.geometry.radius_m / u if u > 0 else 0.0
+        if tsr < 0.1:
+            # near standstill: induction is negligible; keep the last solution (a stopped rotor
+            # still sees the blade-element loads at its own azimuths)
+            if getattr(self, "_aero_ready", False):
+                return
+            tsr = 0.1
+        moved = self._flap_done is not None and any(abs(a) > 0.05 for row in self._flap_done for a in row)
+        key = self._aero_key
+        if key is not None and abs(tsr - key[0]) <= 0.01 * key[0] and abs(u - key[1]) <= 0.01 * key[1] \
+                and self._revs_since_solve < 1:
+            return
+        flap = self._flap_function() if moved else None
+        self.aero.refresh(tsr, u, flap)
+        self._aero_key = (tsr, u)
+        self._revs_since_solve = 0
+        self._aero_ready = True
 
     def step(self, dt_s: float) -> None:
         """Advance the rig by ``dt_s`` with the commands last received."""
+        if self.faults is not None:
+            self.faults.update(self, self.t_s, int(self.angle_rad // TWO_PI))
+        if self.t_s - self._last_command_t > self.servo_watchdog_s:
+            # the servos' own watchdog: no set-point for too long -> neutral
+            for i in range(self.blades):
+                self._flap_cmd[i] = 0.0
         u = self.flow.step(dt_s)
         self.flow_m_s = u
         w = self.speed_rad_s
@@ -163,10 +226,17 @@ class VirtualRig(RigPorts):
         fx = 0.0
         pitch = self._pitch
         bt, hinge = self.blade_torque_nm, self.hinge_nm
+        kscale = self._nbins / TWO_PI
         for i in range(self.blades):
             servo = servos[i]
-            q, h, f = aero.blade_loads(i, (theta + i * pitch) % TWO_PI, w, u,
-                                       math.radians(servo.angle_deg), dt_s)
+            th_i = (theta + i * pitch) % TWO_PI
+            ang = servo.angle_deg
+            k = int(th_i * kscale)
+            if k >= self._nbins:
+                k = self._nbins - 1
+            self._flap_bins[i][k] += ang
+            self._flap_count[i][k] += 1
+            q, h, f = aero.blade_loads(i, th_i, w, u, math.radians(ang), dt_s)
             bt[i] = q
             hinge[i] = h
             q_aero += q
@@ -192,7 +262,24 @@ class VirtualRig(RigPorts):
         self.t_s += dt_s
         self.encoder.step(self.angle_rad)
         self._steps += 1
-        if self._steps % self._refresh_every == 0:
+        self._speed_sum += w_new
+        self._speed_n += 1
+        rev = int(self.angle_rad // TWO_PI)
+        if rev != self._rev_seen:
+            # a new revolution: keep only the last one's flap averages for the next solve
+            self._rev_seen = rev
+            self._revs_since_solve += 1
+            # a revolution that visited every azimuth bin becomes the flap input of the induction
+            if all(all(c) for c in self._flap_count):
+                self._flap_done = [[sm / c for sm, c in zip(sums, counts)]
+                                   for sums, counts in zip(self._flap_bins, self._flap_count)]
+            for i in range(self.blades):
+                self._flap_bins[i] = [0.0] * self._nbins
+                self._flap_count[i] = [0] * self._nbins
+            self._refresh_aero()
+            self._speed_sum = 0.0
+            self._speed_n = 0
+        elif self._steps % self._refresh_every == 0:
             self._refresh_aero()
         self._brake_torque = q_brake
         self._fill_sample(dt_s)
@@ -208,6 +295,16 @@ class VirtualRig(RigPorts):
         s.torque_nm = self.torque_sensor.step(dt_s, q_true) if dt_s > 0 else 0.0
         s.flow_m_s = self.flow_sensor.step(self.flow_m_s)
         s.thrust_n = self.thrust_n
+        faults = self.faults
+        if faults is not None:
+            over = faults.sensor_override
+            if over:
+                s.torque_nm = over.get("torque", s.torque_nm)
+                s.flow_m_s = over.get("flow", s.flow_m_s)
+            if faults.latency_s > 0.0 or faults.drop_telemetry():
+                s.telemetry_age_s += dt_s       # telemetry stale: keep the old values
+                return
+        s.telemetry_age_s = 0.0
         power = self.reports_servo_power
         for i, servo in enumerate(self.servos):
             s.flap_deg[i] = servo.angle_deg

@@ -118,3 +118,13 @@ def test_keys_reference_lists_every_section():
     for key in ("geometry.radius_m", "servos[].electrical.kt_nm_a", "brake.loop.ki_nm",
                 "sensors.torque.range_nm", "limits.max_tsr", "bus.backend"):
         assert key in keys
+
+
+def test_can_demo_profile_is_the_flume_rig_on_can(flume_path):
+    # the CAN demo describes the same rig as the flume demo; only name, description and bus differ
+    from dataclasses import replace
+    flume = load_profile(flume_path)
+    can = load_profile(flume_path.parent / "demo_flume_can.toml")
+    assert can.bus.backend == "can"
+    same = replace(can, name=flume.name, description=flume.description, bus=flume.bus)
+    assert same == flume

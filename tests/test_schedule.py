@@ -91,22 +91,22 @@ def fourier_sum(theta: float, mean: float, cos: list[float], sin: list[float]) -
 
 
 # --------------------------------------------------------------------------- demo files
-def test_demo_csv_raises_flap_upstream_and_reverses_it_downstream() -> None:
+def test_demo_csv_moves_flap_inward_upstream_and_outward_downstream() -> None:
     s = Schedule.load(DEMO / "demo_morph.csv", blades=3)
     assert s.tsr_axis is None and s.form == "table" and s.interpolation == "linear"
     up, down = s.evaluate(np.radians([90.0, 270.0]), blade=0)
-    assert up == pytest.approx(10.0) and down == pytest.approx(-6.0)
-    s.check_travel([10.0, 10.0, 10.0])
+    assert up == pytest.approx(-8.0) and down == pytest.approx(8.0)
+    s.check_travel([8.0, 8.0, 8.0])
     assert "Invented demo data" in s.text
 
 
 def test_demo_toml_has_a_tsr_axis_and_the_same_signs() -> None:
     s = Schedule.load(DEMO / "demo_morph.toml", blades=3)
-    assert s.tsr_axis == (1.5, 2.0, 2.5, 3.0) and s.interpolation == "spline"
-    for tsr in (1.5, 1.75, 2.0, 2.5, 3.0):
+    assert s.tsr_axis == (2.0, 2.5, 3.0) and s.form == "fourier"
+    for tsr in (1.5, 2.0, 2.25, 2.5, 3.0):
         up, down = s.evaluate(np.radians([90.0, 270.0]), blade=1, tsr=tsr)
-        assert up > 5.0 and down < -3.0
-    s.check_travel([12.0, 12.0, 12.0])
+        assert up < -5.0 and down > 5.0
+    s.check_travel([8.0, 8.0, 8.0])
     assert "Invented demo data" in s.text
 
 
@@ -325,9 +325,9 @@ def test_shifted_schedule_is_the_original_read_ahead(text: str, fmt: str, lead_d
 def test_check_travel_names_the_blade_and_azimuth() -> None:
     s = Schedule.load(DEMO / "demo_morph.csv", blades=3)
     with pytest.raises(ScheduleError) as err:
-        s.check_travel([12.0, 9.5, 12.0])
+        s.check_travel([12.0, 7.5, 12.0])
     assert err.value.key.startswith("blade 1, azimuth 90.00")
-    assert err.value.value == pytest.approx(10.0)
+    assert err.value.value == pytest.approx(-8.0)
     assert "demo_morph.csv" in str(err.value)
     with pytest.raises(ScheduleError, match="travel_deg"):
         s.check_travel([12.0, 12.0])
