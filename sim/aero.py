@@ -166,8 +166,10 @@ class RotorAero:
         re = max(re, RE_MIN)
         grid = self._grid
         if grid is None or abs(re - grid.re) > 0.1 * grid.re:
-            log.debug("building polar grid at Re = %.4g", re)
-            grid = self._grid = self.polar.grid(re)
+            # quantised to steps of about 1 % so that nearby operating points share a grid
+            re_q = 10.0 ** (round(math.log10(re) * 200.0) / 200.0)
+            log.debug("polar grid at Re = %.4g (for %.4g)", re_q, re)
+            grid = self._grid = self.polar.grid(re_q)
         return grid
 
     def blade_loads(self, blade: int, theta_rad: float, omega_rad_s: float, flow_m_s: float,

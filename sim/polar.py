@@ -493,8 +493,20 @@ class ThinSectionPolar:
 
     def grid(self, re: float, alpha_step_deg: float = 0.25, delta_step_deg: float = 0.5,
              delta_max_deg: float = 40.0) -> "PolarGrid":
-        """Precomputed :class:`PolarGrid` at one Reynolds number."""
-        return PolarGrid.build(self, re, alpha_step_deg, delta_step_deg, delta_max_deg)
+        """Precomputed :class:`PolarGrid` at one Reynolds number (built once per section,
+        Reynolds number and resolution in this process, then shared: a grid is read-only)."""
+        key = (self.thickness_ratio, self.flap_chord_ratio, self.aspect_ratio, float(re),
+               alpha_step_deg, delta_step_deg, delta_max_deg)
+        grid = _GRID_CACHE.get(key)
+        if grid is None:
+            grid = PolarGrid.build(self, re, alpha_step_deg, delta_step_deg, delta_max_deg)
+            if len(_GRID_CACHE) >= 64:
+                _GRID_CACHE.pop(next(iter(_GRID_CACHE)))
+            _GRID_CACHE[key] = grid
+        return grid
+
+
+_GRID_CACHE: dict[tuple, "PolarGrid"] = {}
 
 
 # --------------------------------------------------------------------------- user tables

@@ -200,9 +200,9 @@ class VirtualRig(RigPorts):
             tsr = 0.1
         moved = self._flap_done is not None and any(abs(a) > 0.05 for row in self._flap_done for a in row)
         key = self._aero_key
-        if key is not None and abs(tsr - key[0]) <= 0.01 * key[0] and abs(u - key[1]) <= 0.01 * key[1] \
+        if key is not None and abs(tsr - key[0]) <= 0.05 * key[0] and abs(u - key[1]) <= 0.05 * key[1] \
                 and self._revs_since_solve < 1:
-            return
+            return      # within a revolution, only a large change of operating point re-solves
         flap = self._flap_function() if moved else None
         self.aero.refresh(tsr, u, flap)
         self._aero_key = (tsr, u)
