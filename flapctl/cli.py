@@ -79,6 +79,15 @@ def cmd_check(args: argparse.Namespace) -> int:
     for k, v in rows:
         print(f"  {k.ljust(width)}  {v}")
     status = 0
+    if profile.bus.backend == "can":
+        from .ports.can import bus_load_lines
+        for line in bus_load_lines(profile):
+            print(f"  {line}")
+    elif profile.bus.backend == "bridge":
+        from .ports.bridge import bridge_options
+        opts = bridge_options(profile)
+        print(f"  bridge endpoint {opts.endpoint} ({opts.mode}), timeout {opts.timeout_ms:g} ms, "
+              f"watchdog {opts.watchdog_ms:g} ms")
     if args.schedule:
         schedule = Schedule.load(args.schedule, profile.blades)
         schedule.check_travel([s.travel_deg for s in profile.servos])
@@ -121,34 +130,109 @@ def _summary_rows(label: str, s) -> list[str]:
 SUMMARY_HEADERS = ["run", "TSR", "revs", "shaft W", "actuator W", "Cp gross", "Cp net"]
 
 
+def _rt_options(args):
+    from .rtclock import RealtimeOptions
+
+    if args.fifo is None and args.cpu is None and not args.mlock and not args.freeze_gc:
+        return None
+    return RealtimeOptions(fifo_priority=args.fifo, cpu=args.cpu, mlockall=args.mlock,
+                           freeze_gc=args.freeze_gc)
+
+
+def _operator_attach(args):
+    """An attach hook that serves the operator interface on the controller, or None."""
+    if not args.operator:
+        return None
+    from .opif import OperatorInterface
+
+    def attach(ctl):
+        opif = OperatorInterface(ctl, command_endpoint=args.command_bind,
+                                 telemetry_endpoint=args.telemetry_bind,
+                                 curve_server_secret=args.server_secret,
+                                 authorized_clients_dir=args.clients_dir,
+                                 heartbeat_timeout_s=args.operator_heartbeat)
+        print(f"operator interface: commands on {opif.command_address}, telemetry on "
+              f"{opif.telemetry_address} (`flapctl watch {opif.telemetry_address}`)", file=sys.stderr)
+        return opif.close
+    return attach
+
+
 def cmd_run(args: argparse.Namespace) -> int:
-    print(SAFETY_SHORT, file=sys.stderr)
+    from .fluid import fluid_properties
+
     profile, schedule = _load_run_inputs(args.profile, args.schedule)
-    if profile.bus.backend != "sim":
-        raise FlapctlError(f"{profile.source}: bus.backend = {profile.bus.backend!r}: `flapctl run` drives "
-                           "the embedded SIL rig in this version; use a profile with backend = \"sim\"")
+    backend = "bridge" if args.bridge else profile.bus.backend
+    hardware = backend != "sim"
+    print(SAFETY_NOTICE if hardware else SAFETY_SHORT, file=sys.stderr)
     tsr = profile.fluid.design_tsr if args.tsr is None else args.tsr
+    f = profile.fluid
+    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
     faults = None
     if args.faults:
+        if backend != "sim" or args.realtime:
+            raise FlapctlError("--faults injects faults into the embedded SIL rig: use it with a "
+                               "profile whose bus.backend is \"sim\", without --bridge or --realtime")
         from sim.faults import load_scenario
         faults = load_scenario(args.faults, profile.blades)
-    out = _run(profile, schedule, tsr, args, args.out, label=Path(args.out).stem, faults=faults)
+    attach = _operator_attach(args)
+    start = not args.operator
+    label = Path(args.out).stem
+    progress = Progress(f"{label:>10}")
+    if backend == "sim" and not args.realtime:
+        out = run_sil_from_args(profile, schedule, tsr, args, args.out, label, faults=faults,
+                                attach=attach, start=start)
+    elif backend == "sim":
+        from .rtrun import run_paced_sil
+        out = run_paced_sil(profile, schedule, tsr=tsr, duration_s=args.duration, out=args.out,
+                            flow_m_s=args.flow, options=_rt_options(args), seed=args.seed,
+                            settle_s=args.settle, progress=progress, label=label, attach=attach,
+                            start=start)
+    elif backend == "bridge":
+        from .ports.bridge import BridgeClock, BridgePorts
+        ports = BridgePorts(profile, endpoint=args.bridge)
+        if ports.mode == "lockstep" or not args.realtime:
+            from .runner import run_with_ports
+            out = run_with_ports(profile, schedule, ports, BridgeClock(ports), tsr=tsr,
+                                 duration_s=args.duration, out=args.out,
+                                 density_kg_m3=fluid.density_kg_m3, flow_m_s=args.flow,
+                                 settle_s=args.settle, progress=progress, label=label,
+                                 backend=f"bridge:{ports.mode}:{ports.endpoint}", attach=attach,
+                                 start=start)
+        else:
+            from .rtrun import run_realtime
+            out = run_realtime(profile, schedule, ports, tsr=tsr, duration_s=args.duration,
+                               out=args.out, density_kg_m3=fluid.density_kg_m3,
+                               options=_rt_options(args), settle_s=args.settle, progress=progress,
+                               label=label, attach=attach, start=start)
+    else:   # can
+        from .ports.can import CanPorts
+        from .rtrun import run_realtime
+        out = run_realtime(profile, schedule, CanPorts(profile), tsr=tsr, duration_s=args.duration,
+                           out=args.out, density_kg_m3=fluid.density_kg_m3,
+                           options=_rt_options(args), settle_s=args.settle, progress=progress,
+                           label=label, attach=attach, start=start)
     s = out.summary
     print(table(SUMMARY_HEADERS, [_summary_rows(Path(args.out).name, s)]))
     for flag in s.flags:
         print(f"NOTE: {flag}")
+    stats = getattr(out, "clock_stats", None)
+    if stats:
+        print(f"clock: {stats.get('late', 0)} late ticks ({stats.get('late_pct', 0):.3f} %), "
+              f"{stats.get('overruns', 0)} overruns, p99 lateness {stats.get('lateness_p99_us', float('nan')):.1f} us, max {stats.get('lateness_max_us', float('nan')):.0f} us")
     print(f"final state {out.state.name}; run log {args.out}")
     for t, reason, detail in out.trips:
         print(f"TRIP at {t:.3f} s: {reason}: {detail}")
     return 0 if not out.trips else 3
 
 
-def _run(profile, schedule, tsr, args, out_path, label, faults=None):
+def run_sil_from_args(profile, schedule, tsr, args, out_path, label, faults=None, attach=None,
+                      start=True):
     from .runner import run_sil
 
     return run_sil(profile, schedule, tsr=tsr, duration_s=args.duration, out=out_path,
                    flow_m_s=args.flow, settle_s=args.settle, seed=args.seed,
-                   progress=Progress(f"{label:>10}"), label=label, faults=faults)
+                   progress=Progress(f"{label:>10}"), label=label, faults=faults, attach=attach,
+                   start=start)
 
 
 # -- demo --------------------------------------------------------------------------------------
@@ -169,8 +253,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
     tsr = profile.fluid.design_tsr if args.tsr is None else args.tsr
     print(f"demo on {profile.name} ({profile.source}) at TSR {tsr:g}, U = "
           f"{profile.fluid.design_speed_m_s:g} m/s, {args.duration:g} s per run (SIL rig, lockstep)")
-    base = _run(profile, neutral, tsr, args, out_dir / "baseline.h5", "baseline")
-    morph = _run(profile, schedule, tsr, args, out_dir / "morphing.h5", "morphing")
+    base = run_sil_from_args(profile, neutral, tsr, args, out_dir / "baseline.h5", "baseline")
+    morph = run_sil_from_args(profile, schedule, tsr, args, out_dir / "morphing.h5", "morphing")
     b, m = base.summary, morph.summary
     gain = m.cp_net / b.cp_net - 1.0 if b.cp_net > 0 else float("nan")
     print()
@@ -361,7 +445,32 @@ def cmd_bench(args: argparse.Namespace) -> int:
     profile_path = args.profile or str(_data_path(DEMO_PROFILE))
     schedule_path = args.schedule or str(_data_path(DEMO_SCHEDULE))
     profile, schedule = _load_run_inputs(profile_path, schedule_path)
+    if args.realtime:
+        from .rtbench import rt_bench
+        print(SAFETY_SHORT, file=sys.stderr)
+        print(rt_bench(profile, schedule, args.rate, args.seconds, _rt_options(args)))
+        return 0
     print(run_bench(profile, schedule, rate_hz=args.rate, seconds=args.seconds))
+    return 0
+
+
+def cmd_keys(args: argparse.Namespace) -> int:
+    from .keys import make_keypair
+
+    public, secret = make_keypair(args.directory, args.name)
+    print(f"public key {public} (give it to the other side), secret key {secret} (keep it private)")
+    return 0
+
+
+def cmd_watch(args: argparse.Namespace) -> int:
+    from .watch import watch
+
+    client = None
+    if args.keys:
+        from .keys import load_secret_key
+        client = load_secret_key(args.keys)
+    watch(args.endpoint, duration_s=args.duration, server_public_key=args.server_key,
+          client_keys=client)
     return 0
 
 
@@ -378,6 +487,14 @@ def _add_run_options(p: argparse.ArgumentParser, duration: float) -> None:
     p.add_argument("--settle", type=float, default=5.0, metavar="SECONDS",
                    help="seconds left out of the summary while the rotor settles")
     p.add_argument("--seed", type=int, default=None, help="SIL random seed (default: the profile's)")
+
+
+def _add_rt_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("real-time settings (opt-in; each falls back with a message)")
+    g.add_argument("--fifo", type=int, default=None, metavar="PRIO", help="SCHED_FIFO priority 1..99")
+    g.add_argument("--cpu", type=int, default=None, metavar="N", help="pin the loop to this CPU")
+    g.add_argument("--mlock", action="store_true", help="lock the process memory (mlockall)")
+    g.add_argument("--freeze-gc", action="store_true", help="freeze and disable the garbage collector in the loop")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -400,6 +517,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--schedule", metavar="FILE", help="flap schedule (default: flaps neutral)")
     p.add_argument("--out", required=True, metavar="FILE", help="run log to create (HDF5; never overwritten)")
     p.add_argument("--faults", metavar="FILE", help="fault scenario (TOML) to inject into the SIL rig")
+    p.add_argument("--bridge", metavar="ENDPOINT",
+                   help="drive an I/O bridge or `python -m sim.server` at this zmq endpoint")
+    p.add_argument("--realtime", action="store_true",
+                   help="pace by the wall clock (the SIL rig in process, or a free-running bridge)")
+    _add_rt_options(p)
+    g = p.add_argument_group("operator interface")
+    g.add_argument("--operator", action="store_true",
+                   help="serve operator commands and telemetry; the operator arms and starts the run")
+    g.add_argument("--command-bind", default="tcp://127.0.0.1:47210", metavar="ENDPOINT")
+    g.add_argument("--telemetry-bind", default="tcp://127.0.0.1:47211", metavar="ENDPOINT")
+    g.add_argument("--server-secret", metavar="FILE",
+                   help="CURVE secret key of this controller (required off 127.0.0.1)")
+    g.add_argument("--clients-dir", metavar="DIR", help="public keys of the operators allowed in")
+    g.add_argument("--operator-heartbeat", type=float, default=None, metavar="SECONDS",
+                   help="trip when the operator is silent this long while armed or running")
     _add_run_options(p, 30.0)
     p.set_defaults(func=cmd_run)
 
@@ -443,7 +575,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--schedule", metavar="FILE")
     p.add_argument("--rate", type=float, default=1000.0, metavar="HZ")
     p.add_argument("--seconds", type=float, default=60.0, metavar="N", help="simulated seconds of lockstep")
+    p.add_argument("--realtime", action="store_true",
+                   help="pace the loop by the wall clock: lateness, late ticks, overruns, verdict")
+    _add_rt_options(p)
     p.set_defaults(func=cmd_bench)
+
+    p = sub.add_parser("keys", help="make a CURVE key pair for the operator interface")
+    p.add_argument("directory", metavar="DIR")
+    p.add_argument("--name", default="operator", help="file name stem (default: operator)")
+    p.set_defaults(func=cmd_keys)
+
+    p = sub.add_parser("watch", help="live terminal view of a running controller")
+    p.add_argument("endpoint", nargs="?", default="tcp://127.0.0.1:47211", metavar="ENDPOINT")
+    p.add_argument("--duration", type=float, default=None, metavar="SECONDS")
+    p.add_argument("--server-key", metavar="FILE", help="the controller's CURVE public key")
+    p.add_argument("--keys", metavar="FILE", help="this operator's CURVE secret key file")
+    p.set_defaults(func=cmd_watch)
 
     p = sub.add_parser("safety", help="print the safety cautions")
     p.set_defaults(func=cmd_safety)

@@ -220,7 +220,7 @@ class OperatorInterface:
             self._close_sockets()
             raise
         self._closed = False
-        controller._listeners = (*controller._listeners, self)
+        controller.add_listener(self)
         log.info("operator interface: commands on %s, telemetry on %s (%s)", self.command_address,
                  self.telemetry_address, "CURVE" if self.curve else "loopback, no CURVE")
 
@@ -491,7 +491,7 @@ class OperatorInterface:
             return
         self._closed = True
         c = self.controller
-        c._listeners = tuple(x for x in c._listeners if x is not self)
+        c.remove_listener(self)
         self._close_sockets()
 
     @property

@@ -97,9 +97,11 @@ def _execute(profile: Profile, schedule: Schedule, ports: RigPorts, clock: Realt
              lead: LeadModel, options: RealtimeOptions | None, policy: OverrunPolicy,
              meta: dict[str, Any], settle_flow_m_s: float, settle_s: float,
              progress: Callable[[float], None] | None, chunk_rows: int | None,
-             listeners: tuple[Callable, ...], close_ports: bool, rig: object) -> RealtimeOutcome:
+             listeners: tuple[Callable, ...], close_ports: bool, rig: object,
+             attach=None, start: bool = True) -> RealtimeOutcome:
     runlog = None
     ctl = None
+    detach = None
     interrupted = False
     try:
         if out is not None:
@@ -107,12 +109,16 @@ def _execute(profile: Profile, schedule: Schedule, ports: RigPorts, clock: Realt
             _pin_writer_away(runlog, options)
         ctl = Controller(profile, schedule, ports, clock, tsr=tsr, density_kg_m3=density_kg_m3,
                          lead=lead, runlog=runlog, listeners=listeners)
+        detach = attach(ctl) if attach is not None else None
         try:
-            ctl.run_for(duration_s, progress=progress)
+            ctl.run_for(duration_s, progress=progress, start=start)
         except KeyboardInterrupt:
             interrupted = True
             ctl.supervisor.trip(ctl.t_s, "operator_interrupt", "Ctrl-C during the run")
             ports.safe()
+        finally:
+            if detach is not None:
+                detach()
     except BaseException:
         _finish(ctl, ports, clock, runlog, profile, tsr, settle_flow_m_s, settle_s, False,
                 close_ports, quiet=True)
@@ -180,7 +186,8 @@ def run_realtime(profile: Profile, schedule: Schedule, ports: RigPorts, *, tsr: 
                  policy: OverrunPolicy | None = None, lead: LeadModel | None = None,
                  settle_s: float = 3.0, progress: Callable[[float], None] | None = None,
                  label: str = "", chunk_rows: int | None = None,
-                 listeners: tuple[Callable, ...] = (), close_ports: bool = True) -> RealtimeOutcome:
+                 listeners: tuple[Callable, ...] = (), close_ports: bool = True,
+                 attach=None, start: bool = True) -> RealtimeOutcome:
     """Run the controller on ``ports`` in real time for ``duration_s``; log to ``out``.
 
     ``density_kg_m3`` is the fluid density used for Cp; ``settle_s`` the start-up time left out
@@ -203,7 +210,7 @@ def run_realtime(profile: Profile, schedule: Schedule, ports: RigPorts, *, tsr: 
                     density_kg_m3=density_kg_m3, lead=lead, options=options, policy=policy,
                     meta=meta, settle_flow_m_s=profile.fluid.design_speed_m_s, settle_s=settle_s,
                     progress=progress, chunk_rows=chunk_rows, listeners=listeners,
-                    close_ports=close_ports, rig=ports)
+                    close_ports=close_ports, rig=ports, attach=attach, start=start)
 
 
 def run_paced_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: float,
@@ -213,7 +220,8 @@ def run_paced_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_
                   seed: int | None = None, settle_s: float = 3.0,
                   progress: Callable[[float], None] | None = None, label: str = "",
                   chunk_rows: int | None = None,
-                  listeners: tuple[Callable, ...] = ()) -> RealtimeOutcome:
+                  listeners: tuple[Callable, ...] = (), attach=None,
+                  start: bool = True) -> RealtimeOutcome:
     """The in-process SIL rig paced by the real-time clock (stepped by dt before each tick).
 
     Default policy: count and warn, never trip (the model's long steps are not the loop's fault).
@@ -238,4 +246,5 @@ def run_paced_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_
     return _execute(profile, schedule, rig, clock, tsr=tsr, duration_s=duration_s, out=out,
                     density_kg_m3=fluid.density_kg_m3, lead=lead, options=options, policy=policy,
                     meta=meta, settle_flow_m_s=u, settle_s=settle_s, progress=progress,
-                    chunk_rows=chunk_rows, listeners=listeners, close_ports=True, rig=rig)
+                    chunk_rows=chunk_rows, listeners=listeners, close_ports=True, rig=rig,
+                    attach=attach, start=start)

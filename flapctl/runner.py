@@ -23,7 +23,7 @@ from .schedule import Schedule
 from .scheduler import Controller
 from .supervisor import State
 
-__all__ = ["RunOutcome", "run_sil", "summary_dict", "settle_revolutions"]
+__all__ = ["RunOutcome", "run_sil", "run_with_ports", "summary_dict", "settle_revolutions"]
 
 log = logging.getLogger(__name__)
 
@@ -66,7 +66,8 @@ def summary_dict(summary: RunEnergy) -> dict:
 def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: float,
             out: str | Path | None, flow_m_s: float | None = None, settle_s: float = 3.0,
             lead: LeadModel | None = None, seed: int | None = None, progress=None,
-            label: str = "", chunk_rows: int | None = None, faults=None) -> RunOutcome:
+            label: str = "", chunk_rows: int | None = None, faults=None, attach=None,
+            start: bool = True) -> RunOutcome:
     """Run the controller in lockstep against the SIL rig; write ``out`` when given.
 
     ``faults`` is a fault scenario (``sim.faults.Scenario``) to inject into the rig.
@@ -76,34 +77,55 @@ def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: flo
     fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
     u = f.design_speed_m_s if flow_m_s is None else flow_m_s
     period_ns = int(round(1e9 / profile.control.rate_hz))
-    dt = period_ns * 1e-9
     rig = rig_cls(profile, density_kg_m3=fluid.density_kg_m3,
-                  viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=dt, flow_m_s=u,
+                  viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=period_ns * 1e-9, flow_m_s=u,
                   initial_speed_rad_s=tsr * u / profile.geometry.radius_m, seed=seed,
                   faults=_injector(faults))
-    clock = VirtualClock(period_ns, rig.step)
+    extra = {"seed": profile.sim.seed if seed is None else seed,
+             "kinematic_viscosity_m2_s": fluid.kinematic_viscosity_m2_s,
+             "fault_scenario": faults.name if faults is not None else ""}
+    return run_with_ports(profile, schedule, rig, VirtualClock(period_ns, rig.step), tsr=tsr,
+                          duration_s=duration_s, out=out, density_kg_m3=fluid.density_kg_m3,
+                          flow_m_s=u, settle_s=settle_s, lead=lead, progress=progress, label=label,
+                          chunk_rows=chunk_rows, backend="sim-lockstep", extra=extra,
+                          attach=attach, start=start)
+
+
+def run_with_ports(profile: Profile, schedule: Schedule, ports, clock, *, tsr: float,
+                   duration_s: float, out: str | Path | None, density_kg_m3: float,
+                   flow_m_s: float | None = None, settle_s: float = 3.0,
+                   lead: LeadModel | None = None, progress=None, label: str = "",
+                   chunk_rows: int | None = None, backend: str = "", extra: dict | None = None,
+                   attach=None, start: bool = True) -> RunOutcome:
+    """The controller on any ports and clock, logged to ``out`` (HDF5) when given.
+
+    ``attach(controller)`` (optional) is called before the first tick and may return a
+    function that is called after the last (an operator interface, say); ``start`` False
+    leaves arming and starting to the operator.
+    """
+    u = profile.fluid.design_speed_m_s if flow_m_s is None else flow_m_s
     lead = lead if lead is not None else LeadModel.from_control(profile.control)
     runlog = None
     if out is not None:
         meta = {
-            "label": label, "backend": "sim-lockstep", "profile_name": profile.name,
-            "profile_source": profile.source, "profile_text": profile.text,
-            "schedule_source": schedule.source, "schedule_text": schedule.text,
-            "tsr_setpoint": tsr, "flow_setpoint_m_s": u, "duration_s": duration_s,
-            "rate_hz": profile.control.rate_hz, "lead": lead.describe(),
-            "seed": profile.sim.seed if seed is None else seed,
-            "density_kg_m3": fluid.density_kg_m3,
-            "kinematic_viscosity_m2_s": fluid.kinematic_viscosity_m2_s,
-            "command_line": " ".join(sys.argv),
-            "fault_scenario": faults.name if faults is not None else "",
+            "label": label, "backend": backend or type(ports).__name__,
+            "profile_name": profile.name, "profile_source": profile.source,
+            "profile_text": profile.text, "schedule_source": schedule.source,
+            "schedule_text": schedule.text, "tsr_setpoint": tsr, "flow_setpoint_m_s": u,
+            "duration_s": duration_s, "rate_hz": 1e9 / clock.period_ns, "lead": lead.describe(),
+            "density_kg_m3": density_kg_m3, "command_line": " ".join(sys.argv),
+            **(extra or {}),
         }
         runlog = RunLog(out, profile.blades, meta,
-                        chunk_rows=chunk_rows or int(profile.control.rate_hz))
-    ctl = Controller(profile, schedule, rig, clock, tsr=tsr, density_kg_m3=fluid.density_kg_m3,
+                        chunk_rows=chunk_rows or int(round(1e9 / clock.period_ns)))
+    ctl = Controller(profile, schedule, ports, clock, tsr=tsr, density_kg_m3=density_kg_m3,
                      lead=lead, runlog=runlog)
+    detach = attach(ctl) if attach is not None else None
     try:
-        state = ctl.run_for(duration_s, progress=progress)
+        state = ctl.run_for(duration_s, progress=progress, start=start)
     finally:
+        if detach is not None:
+            detach()
         skip = settle_revolutions(profile, tsr, u, settle_s)
         summary = ctl.summary(skip)
         if runlog is not None:
@@ -111,5 +133,5 @@ def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: flo
                 runlog.set_summary(summary_dict(summary))
             finally:
                 runlog.close()
-        rig.close()
-    return RunOutcome(Path(out) if out else None, summary, state, list(ctl.supervisor.trips), ctl, rig)
+        ports.close()
+    return RunOutcome(Path(out) if out else None, summary, state, list(ctl.supervisor.trips), ctl, ports)

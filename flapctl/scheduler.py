@@ -90,6 +90,13 @@ class Controller:
         if new in (State.STOPPING, State.FAULT, State.SAFE):
             self.brake.stop()
 
+    def add_listener(self, listener: Callable) -> None:
+        """Call ``listener(controller, sample)`` after every tick (telemetry, operator interface)."""
+        self._listeners = (*self._listeners, listener)
+
+    def remove_listener(self, listener: Callable) -> None:
+        self._listeners = tuple(x for x in self._listeners if x is not listener)
+
     def command(self, name: str, reason: str = "operator") -> bool:
         return self.supervisor.command(self.t_s, name, reason)
 
