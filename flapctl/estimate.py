@@ -40,6 +40,7 @@ class AzimuthEstimator:
                 f"encoder.observer_bandwidth_hz = {bandwidth_hz:g} is too high for a {dt_s * 1e3:g} ms "
                 f"tick (w_n dt = {wn_dt:.2f}; keep it below 0.3, ideally 0.1)")
         self.cpr = int(counts_per_rev)
+        self._missing_after = self.cpr + self.cpr // 2
         self._mod = 1 << int(counter_bits)
         self._half = self._mod >> 1
         self._rad_per_count = TWO_PI / self.cpr
@@ -70,8 +71,13 @@ class AzimuthEstimator:
         self._ticks = 0
         self.ready = False                # speed known (after the start-up window)
 
-    def update(self, counts: int, index_latch: int | None, index_events: int) -> None:
-        """Advance one tick with the newest counter reading."""
+    def update(self, counts: int, index_latch: int | None, index_events: int,
+               dt_s: float | None = None) -> None:
+        """Advance one tick with the newest counter reading.
+
+        ``dt_s`` is the time since the previous reading when it is not the nominal tick (a
+        free-running bridge that dropped a readings message, say); default the nominal tick.
+        """
         raw = counts
         if self._raw is None:
             step = 0
@@ -109,6 +115,11 @@ class AzimuthEstimator:
                 if err > self.cpr // 2:
                     err -= self.cpr
                 self._home_total += err
+        elif self._last_index_total is not None and abs(total - self._last_index_total) > self._missing_after:
+            # one and a half revolutions without an index pulse: the index was lost
+            self.index_errors += 1
+            self.last_index_error_counts = total - self._last_index_total
+            self._last_index_total = total - self.cpr if total > self._last_index_total else total + self.cpr
         angle = self._offset_rad + (total - self._home_total) * self._rad_per_count
         self.angle_rad = angle
         self.azimuth_rad = angle % TWO_PI
@@ -126,8 +137,8 @@ class AzimuthEstimator:
                 self._integ = self.speed_rad_s
                 self.ready = True
             return
+        dt = self.dt if dt_s is None or not dt_s > 0.0 else dt_s
+        self.theta_hat += self.speed_rad_s * dt      # predict to this reading, then correct
         e = angle - self.theta_hat
-        self._integ += self.ki * e * self.dt
-        w = self.kp * e + self._integ
-        self.speed_rad_s = w
-        self.theta_hat += w * self.dt
+        self._integ += self.ki * e * dt
+        self.speed_rad_s = self.kp * e + self._integ

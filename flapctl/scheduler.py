@@ -78,6 +78,7 @@ class Controller:
         self.power = [0.0] * n
         self.tick = 0
         self.t_s = 0.0
+        self._last_sample_t = float("-inf")
         self.flow_m_s = 0.0
         self.tsr = 0.0
         self._listeners = listeners
@@ -112,7 +113,11 @@ class Controller:
         dt = self.dt
         s = self.ports.read()
         est = self.estimator
-        est.update(s.counts, s.index_latch, s.index_events)
+        gap = s.t_s - self._last_sample_t
+        self._last_sample_t = s.t_s
+        # readings more than half a tick off the nominal spacing: tell the observer the real dt
+        est.update(s.counts, s.index_latch, s.index_events,
+                   gap if (gap > 1.5 * dt or 0.0 < gap < 0.5 * dt) else None)
         theta = est.azimuth_rad
         omega = est.speed_rad_s
         flow = s.flow_m_s
@@ -122,8 +127,9 @@ class Controller:
         sup = self.supervisor
         cmd = self.cmd
         n = self.blades
-        if sup.check(s.t_s, omega, tsr, s.torque_nm, flow):
-            if sup.check_encoder(s.t_s, est.last_step_counts, est.index_errors):
+        # the encoder first: a glitch there also shows as a (false) overspeed
+        if sup.check_encoder(s.t_s, est.last_step_counts, est.index_errors):
+            if sup.check(s.t_s, omega, tsr, s.torque_nm, flow):
                 sup.check_servos(s.t_s, dt, cmd, s.flap_deg, s.servo_current_a, s.telemetry_age_s)
         state = sup.state
         if state == State.RUNNING:

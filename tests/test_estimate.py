@@ -74,3 +74,29 @@ def test_index_homes_azimuth_and_counts_errors():
 def test_bandwidth_too_high_for_tick_is_rejected():
     with pytest.raises(ValueError, match="observer_bandwidth_hz"):
         AzimuthEstimator(CPR, 32, 0.0, 200.0, 0.9, DT)
+
+
+def test_missing_index_is_counted():
+    # an index pulse must come once per revolution (REFERENCES sec. 10); none for 1.5 rev is an error
+    est = _est()
+    est.update(0, None, 0)
+    est.update(10, 5, 1)
+    assert est.index_errors == 0
+    for k in range(1, 40):
+        est.update(10 + k * 100, 5, 1)          # 3900 counts on, same single index event
+    assert est.index_errors == 0                 # still within 1.5 revolutions of the index
+    for k in range(40, 80):
+        est.update(10 + k * 100, 5, 1)
+    assert est.index_errors == 1
+
+
+def test_observer_uses_the_real_gap_between_readings():
+    # constant speed 8 rad/s; every 10th reading is lost (the next one comes 2 ticks later)
+    est = _est(bw=10.0)
+    angle, t = 0.0, 0.0
+    for k in range(3000):
+        step = 2 if k % 10 == 9 else 1
+        t += step * DT
+        angle = 8.0 * t
+        est.update(int(angle / (2 * math.pi) * CPR), None, 0, step * DT if step > 1 else None)
+    assert est.speed_rad_s == pytest.approx(8.0, rel=0.02)

@@ -128,3 +128,44 @@ def test_can_demo_profile_is_the_flume_rig_on_can(flume_path):
     assert can.bus.backend == "can"
     same = replace(can, name=flume.name, description=flume.description, bus=flume.bus)
     assert same == flume
+
+
+# -- property tests: the profile loader never crashes, whatever it is given -------------------
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+_leaf = st.one_of(st.none(), st.booleans(), st.integers(-10**9, 10**9), st.floats(allow_nan=True),
+                  st.text(max_size=10), st.lists(st.integers(0, 5), max_size=3))
+
+
+@settings(max_examples=150, deadline=None)
+@given(section=st.sampled_from(["geometry", "rotor", "fluid", "encoder", "brake", "limits", "control",
+                                "sensors", "bus", "sim", "channel"]),
+       key=st.text(min_size=1, max_size=20), value=_leaf)
+def test_any_key_change_gives_profile_error_or_profile(section, key, value):
+    # hypothesis changes one key of a valid profile to anything; the loader must answer with a
+    # valid profile or a ProfileError that names the file -- never another exception
+    from conftest import PROFILES
+    data = _data(PROFILES / "demo_flume_3blade.toml")
+    target = data.setdefault(section, {})
+    if isinstance(target, dict):
+        keys = list(target)
+        chosen = keys[hash(key) % len(keys)] if keys and hash(key) % 2 else key
+        target[chosen] = value
+    try:
+        parse_profile(data, "prop.toml")
+    except ProfileError as exc:
+        assert "prop.toml" in str(exc)
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.text(max_size=200))
+def test_any_text_gives_profile_error(text):
+    import tempfile
+    from pathlib import Path
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "rig.toml"
+        path.write_text(text, encoding="utf-8")
+        try:
+            load_profile(path)
+        except ProfileError as exc:
+            assert "rig.toml" in str(exc)
