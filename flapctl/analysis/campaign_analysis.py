@@ -48,7 +48,7 @@ from flapctl.profile import Profile, parse_profile
 
 from . import blockage as _blk
 from .bins import Bin, bin_by
-from .stats import (R1_LIMIT, CommonTypeB, auto_batch_means, batch_means, coverage_factor,
+from .stats import (MIN_BATCHES, R1_LIMIT, CommonTypeB, auto_batch_means, coverage_factor,
                     lag_autocorr, paired_gain, welch_satterthwaite)
 
 __all__ = [
@@ -262,7 +262,9 @@ def gain_from_runs(morph_runs: list[np.ndarray], base_runs: list[np.ndarray],
     """Net gain of morph over base from per-revolution C_P,net of runs paired by block.
 
     ``morph_runs[j]`` and ``base_runs[j]`` are the revolution values of the two runs of block
-    j.  Returns (Fieller GainResult, delta GainResult, details) with details keys
+    j.  Batches of m revolutions (m from 1, enlarged by about a quarter while the pair
+    residuals' |r1| > 0.2 and at least 10 pairs remain; or ``batch_size``) are paired inside
+    each block.  Returns (Fieller GainResult, delta GainResult, details) with details keys
     ``batch_size``, ``n_blocks``, ``lag1_autocorr``, ``block_test_p``, ``pooled_to_blocks``,
     ``notes``.
     """
@@ -270,34 +272,26 @@ def gain_from_runs(morph_runs: list[np.ndarray], base_runs: list[np.ndarray],
         raise FlapctlError(f"gain_from_runs: {len(morph_runs)} morph runs and {len(base_runs)} "
                            "base runs: expected the same number (one pair per block), at least 1")
     notes = []
-    if batch_size is None:
-        # batch size from the autocorrelation of each mode's record (whole revolutions)
-        sizes = []
-        for runs in (morph_runs, base_runs):
-            for r in runs:
-                if len(r) >= 4:
-                    sizes.append(auto_batch_means(r, min_batches=2, max_batches=max(2, len(r) // 1)).batch_size)
-        batch_size = max(sizes) if sizes else 1
-    m = max(1, int(batch_size))
-    shortest = min(min(len(a), len(b)) for a, b in zip(morph_runs, base_runs))
+    m = 1 if batch_size is None else max(1, int(batch_size))
     while True:
         ma, ba, blk = _pairs(morph_runs, base_runs, m)
-        if ma.size < 2:
+        if ma.size < 2 or batch_size is not None:
             break
         r = ma.mean() / ba.mean() if ba.mean() != 0 else math.nan
         resid = ma - r * ba
         r1 = lag_autocorr(resid, 1) if np.ptp(resid) > 0 else math.nan
-        if math.isnan(r1) or abs(r1) <= R1_LIMIT or m >= shortest:
+        nxt = m + max(1, m // 4)
+        # enlarge while the residuals are correlated and >= MIN_BATCHES pairs remain
+        if math.isnan(r1) or abs(r1) <= R1_LIMIT or _pairs(morph_runs, base_runs, nxt)[0].size < MIN_BATCHES:
             break
-        m = min(shortest, m + max(1, m // 4))
-    if ma.size < 2:
-        raise FlapctlError(f"gain_from_runs: {ma.size} pair(s) of batches: too few revolutions "
-                           "for an interval (need at least 2 pairs)")
+        m = nxt
     r = ma.mean() / ba.mean()
     resid = ma - r * ba
     r1 = lag_autocorr(resid, 1) if np.ptp(resid) > 0 else math.nan
     if not math.isnan(r1) and abs(r1) > R1_LIMIT:
-        notes.append(f"pair residuals keep lag-1 autocorrelation {r1:+.2f} at the largest batches")
+        notes.append(f"pair residuals keep lag-1 autocorrelation {r1:+.2f} with batches of {m} "
+                     "revolutions (larger batches would leave fewer than "
+                     f"{MIN_BATCHES} pairs)")
     p_block = _block_test(resid, blk)
     pooled = False
     n_blocks = len(np.unique(blk))
@@ -356,7 +350,7 @@ def _mode_stats(runs: list[RunRecord], kind: str, profile: Profile, B: float | N
     mean_u = float(np.sum(revs["mean_flow_m_s"] * revs["duration_s"]) / dur)
     flags = []
     for r in runs:
-        flags.extend(f for f in r.flags if "estimated" not in f or "servo" not in f)
+        flags.extend(r.flags)
     g = profile.geometry
     area = 2.0 * g.radius_m * g.span_m
     # thrust coefficient
@@ -515,7 +509,7 @@ def _gain(here: list[RunRecord], mode: str, base: str, stats_here: dict[str, Mod
     if not morph_runs:
         return None
     ms, bs = stats_here[mode], stats_here[base]
-    tb = CommonTypeB(rel_u_shaft=rel_shaft, actuator_cp=max(ms.cp_actuator - bs.cp_actuator, 0.0),
+    tb = CommonTypeB(rel_u_shaft=rel_shaft, actuator_cp=max(ms.cp_actuator, 0.0),
                      rel_u_actuator=act_rel)
     try:
         fie, dlt, det = gain_from_runs(morph_runs, base_runs, level=level, type_b=tb)
