@@ -62,15 +62,9 @@ class ServoPowerEstimator:
         return self.power_w
 
 
-@dataclass(frozen=True)
-class RevolutionRecord:
-    """Energy of one whole revolution."""
-    index: int
-    t_start_s: float
-    duration_s: float
-    mean_speed_rad_s: float
-    mean_tsr: float
-    mean_flow_m_s: float
+class _EnergyRatios:
+    """Cp gross / net from a record's shaft, servo and fluid energies."""
+
     shaft_energy_j: float
     servo_energy_j: tuple[float, ...]
     fluid_energy_j: float
@@ -91,7 +85,21 @@ class RevolutionRecord:
 
 
 @dataclass(frozen=True)
-class RunEnergy:
+class RevolutionRecord(_EnergyRatios):
+    """Energy of one whole revolution."""
+    index: int
+    t_start_s: float
+    duration_s: float
+    mean_speed_rad_s: float
+    mean_tsr: float
+    mean_flow_m_s: float
+    shaft_energy_j: float
+    servo_energy_j: tuple[float, ...]
+    fluid_energy_j: float
+
+
+@dataclass(frozen=True)
+class RunEnergy(_EnergyRatios):
     """Totals over whole revolutions of a run (after the settling revolutions)."""
     revolutions: int
     duration_s: float
@@ -104,9 +112,6 @@ class RunEnergy:
     servo_power_estimated: bool
     flags: tuple[str, ...] = field(default=())
 
-    @property
-    def actuator_energy_j(self) -> float:
-        return sum(self.servo_energy_j)
 
     @property
     def shaft_power_w(self) -> float:
@@ -116,15 +121,6 @@ class RunEnergy:
     def actuator_power_w(self) -> float:
         return self.actuator_energy_j / self.duration_s if self.duration_s > 0 else float("nan")
 
-    @property
-    def cp_gross(self) -> float:
-        return self.shaft_energy_j / self.fluid_energy_j if self.fluid_energy_j > 0 else float("nan")
-
-    @property
-    def cp_net(self) -> float:
-        if self.fluid_energy_j <= 0:
-            return float("nan")
-        return (self.shaft_energy_j - self.actuator_energy_j) / self.fluid_energy_j
 
 
 class EnergyLedger:

@@ -9,13 +9,12 @@ what was expected.  ``flapctl check --keys`` prints every key with its range.
 from __future__ import annotations
 
 import re
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from .errors import ProfileError
-from .schema import choice, describe, load_section, num, text
+from .schema import choice, describe, load_section, num, read_toml, text
 
 __all__ = [
     "SCHEMA_VERSION", "Profile", "Geometry", "Rotor", "Fluid", "Channel", "Encoder", "Servo",
@@ -267,15 +266,7 @@ def parse_profile(data: dict[str, Any], source: str = "<memory>", text_: str = "
 
 def load_profile(path: str | Path) -> Profile:
     """Read and validate a rig profile file."""
-    path = Path(path)
-    try:
-        raw = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ProfileError(str(path), "<file>", str(path), f"a readable file ({exc.strerror})") from exc
-    try:
-        data = tomllib.loads(raw)
-    except tomllib.TOMLDecodeError as exc:
-        raise ProfileError(str(path), "<syntax>", str(exc), "valid TOML") from exc
+    data, raw = read_toml(path)
     return parse_profile(data, str(path), raw)
 
 

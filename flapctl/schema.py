@@ -10,14 +10,16 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import tomllib
 import types
 import typing
 from collections.abc import Mapping
+from pathlib import Path
 from typing import Any, TypeVar
 
 from .errors import ProfileError
 
-__all__ = ["num", "choice", "text", "load_section", "describe"]
+__all__ = ["num", "choice", "text", "load_section", "describe", "read_toml"]
 
 T = TypeVar("T")
 _MISSING = dataclasses.MISSING
@@ -178,3 +180,17 @@ def describe(cls: type, prefix: str = "") -> list[str]:
         doc = f"  {meta['doc']}" if meta.get("doc") else ""
         lines.append(f"{key}: {desc}{' ' + rng if rng else ''}{default}{doc}")
     return lines
+
+
+def read_toml(path: str | Path) -> tuple[dict[str, Any], str]:
+    """(parsed mapping, raw text) of a TOML file; ProfileError naming the file otherwise."""
+    path = Path(path)
+    try:
+        raw = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        why = getattr(exc, "strerror", None) or str(exc)
+        raise ProfileError(str(path), "<file>", str(path), f"a readable UTF-8 file ({why})") from exc
+    try:
+        return tomllib.loads(raw), raw
+    except tomllib.TOMLDecodeError as exc:
+        raise ProfileError(str(path), "<syntax>", str(exc), "valid TOML") from exc

@@ -30,12 +30,11 @@ from __future__ import annotations
 
 import math
 import random
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
 from flapctl.errors import ProfileError
-from flapctl.schema import choice, load_section, num, text
+from flapctl.schema import choice, load_section, num, read_toml, text
 
 __all__ = ["KINDS", "Fault", "Scenario", "load_scenario", "parse_scenario", "FaultInjector"]
 
@@ -110,15 +109,7 @@ def parse_scenario(data: dict, source: str = "<memory>", blades: int | None = No
 
 
 def load_scenario(path: str | Path, blades: int | None = None) -> Scenario:
-    path = Path(path)
-    try:
-        raw = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ProfileError(str(path), "<file>", str(path), f"a readable file ({exc.strerror})") from exc
-    try:
-        data = tomllib.loads(raw)
-    except tomllib.TOMLDecodeError as exc:
-        raise ProfileError(str(path), "<syntax>", str(exc), "valid TOML") from exc
+    data, _raw = read_toml(path)
     return parse_scenario(data, str(path), blades)
 
 

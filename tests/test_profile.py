@@ -105,7 +105,7 @@ def test_hold_torque_above_max(flume_path):
 
 
 def test_file_errors(tmp_path):
-    with pytest.raises(ProfileError, match="readable file"):
+    with pytest.raises(ProfileError, match="readable UTF-8 file"):
         load_profile(tmp_path / "missing.toml")
     bad = tmp_path / "bad.toml"
     bad.write_text("schema_version = 1\n[geometry\n")
