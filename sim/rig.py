@@ -139,6 +139,7 @@ class VirtualRig(RigPorts):
         self._aero_key = None
         self._speed_sum = 0.0
         self._speed_n = 0
+        self._rev_speed: float | None = None    # mean speed of the last whole revolution
         self._revs_since_solve = 0
         self._rev_seen = 0
         self.encoder.step(self.angle_rad)
@@ -190,7 +191,7 @@ class VirtualRig(RigPorts):
         u = self.flow.mean_m_s
         # the speed averaged over the revolution so far: the torque ripple is phase-locked to the
         # azimuth, so an instantaneous speed would bias the induction's operating point
-        speed = self._speed_sum / self._speed_n if self._speed_n else self.speed_rad_s
+        speed = self._rev_speed if self._rev_speed is not None else self.speed_rad_s
         tsr = speed * self.profile.geometry.radius_m / u if u > 0 else 0.0
         if tsr < 0.1:
             # near standstill: induction is negligible; keep the last solution (a stopped rotor
@@ -276,9 +277,11 @@ class VirtualRig(RigPorts):
             for i in range(self.blades):
                 self._flap_bins[i] = [0.0] * self._nbins
                 self._flap_count[i] = [0] * self._nbins
-            self._refresh_aero()
+            if self._speed_n:
+                self._rev_speed = self._speed_sum / self._speed_n
             self._speed_sum = 0.0
             self._speed_n = 0
+            self._refresh_aero()
         elif self._steps % self._refresh_every == 0:
             self._refresh_aero()
         self._brake_torque = q_brake
