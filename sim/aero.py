@@ -169,7 +169,8 @@ class RotorAero:
             # quantised to steps of about 1 % so that nearby operating points share a grid
             re_q = 10.0 ** (round(math.log10(re) * 200.0) / 200.0)
             log.debug("polar grid at Re = %.4g (for %.4g)", re_q, re)
-            grid = self._grid = self.polar.grid(re_q)
+            grid = self._grid = self.polar.grid(re_q, alpha_step_deg=0.5, delta_step_deg=0.5,
+                                                delta_max_deg=30.0)
         return grid
 
     def blade_loads(self, blade: int, theta_rad: float, omega_rad_s: float, flow_m_s: float,
