@@ -340,7 +340,9 @@ def sil_point(profile: Profile, schedule: Schedule, spec: PointSpec, lead: LeadM
               progress: Callable[[float], None] | None) -> PointData:
     """Run one point as a lockstep SIL run (:func:`flapctl.runner.run_sil`) and read its log back.
 
-    The run log does not carry the rig's streamwise force, so ``thrust_n`` is None here.
+    ``thrust_n``: the mean streamwise force of each whole revolution from the log's
+    ``thrust_n`` column (the SIL rig reports it like a streamwise load cell); None when the log
+    has no finite thrust.
     """
     from .runner import run_sil
 
@@ -351,9 +353,24 @@ def sil_point(profile: Profile, schedule: Schedule, spec: PointSpec, lead: LeadM
                           progress=progress, label=spec.label)
         run = open_run(out)
     recs = list(outcome.controller.ledger.records)
-    return PointData(revolutions=recs, thrust_n=None, ticks=run.ticks, state=outcome.state.name,
+    thrust = _revolution_means(run.ticks, recs, "thrust_n")
+    return PointData(revolutions=recs, thrust_n=thrust, ticks=run.ticks, state=outcome.state.name,
                      trips=[(float(t), str(r), str(d)) for t, r, d in outcome.trips],
                      servo_power_estimated=outcome.controller.ledger.servo_power_estimated)
+
+
+def _revolution_means(ticks: np.ndarray, recs: list[RevolutionRecord], field: str) -> np.ndarray | None:
+    """Mean of a tick column over each whole revolution; None when the column is absent or NaN."""
+    if field not in (ticks.dtype.names or ()):
+        return None
+    t = ticks["t_s"]
+    values = ticks[field].astype(float)
+    out = []
+    for r in recs:
+        sel = (t >= r.t_start_s - 1e-9) & (t < r.t_start_s + r.duration_s - 1e-9)
+        out.append(float(np.mean(values[sel])) if np.any(sel) else float("nan"))
+    arr = np.asarray(out)
+    return arr if len(arr) and np.all(np.isfinite(arr)) else None
 
 
 def settle_index(recs: list[RevolutionRecord], tsr: float, settling: Settling) -> int | None:
@@ -553,6 +570,10 @@ def run_campaign(plan: Plan, profile: Profile, out_h5: str | Path, *,
             prof = _with_temperature(profile, spec.temperature_true_c)
             cb = None if progress is None else (lambda x, _s=spec: progress(_s, total, 0.99 * x))
             note = ""
+            started = grp.create_group(spec.name)       # marks the point as begun, not complete
+            started.attrs["complete"] = False
+            started.attrs["status"] = "running"
+            f.flush()
             try:
                 data = point_runner(prof, schedules[spec.mode], spec, _lead_of(mode, profile), cb)
                 error = None

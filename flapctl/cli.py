@@ -592,6 +592,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--keys", metavar="FILE", help="this operator's CURVE secret key file")
     p.set_defaults(func=cmd_watch)
 
+    from . import cli_campaign
+    cli_campaign.register(sub)
+
     p = sub.add_parser("safety", help="print the safety cautions")
     p.set_defaults(func=cmd_safety)
     return parser

@@ -36,12 +36,18 @@ EVENT_DTYPE = np.dtype([("t_s", "f8"), ("kind", h5py.string_dtype()), ("text", h
 
 
 def tick_dtype(blades: int) -> np.dtype:
-    """The per-tick row: scalars, then per-blade arrays of length ``blades``."""
+    """The per-tick row: scalars, then per-blade arrays of length ``blades``.
+
+    Time, counts and azimuth keep double precision; the other measurements are single precision
+    (7 significant digits, far below any sensor's resolution), which halves the log's size.
+    ``thrust_n`` is NaN when the rig has no streamwise load cell.
+    """
     return np.dtype([
-        ("t_s", "f8"), ("counts", "i8"), ("azimuth_deg", "f8"), ("speed_rad_s", "f8"),
-        ("tsr", "f8"), ("flow_m_s", "f8"), ("torque_nm", "f8"), ("brake_nm", "f8"),
-        ("state", "u1"), ("flap_cmd_deg", "f8", (blades,)), ("flap_deg", "f8", (blades,)),
-        ("servo_power_w", "f8", (blades,)), ("lateness_us", "f4"), ("compute_us", "f4"),
+        ("t_s", "f8"), ("counts", "i8"), ("azimuth_deg", "f8"), ("speed_rad_s", "f4"),
+        ("tsr", "f4"), ("flow_m_s", "f4"), ("torque_nm", "f4"), ("thrust_n", "f4"),
+        ("brake_nm", "f4"), ("state", "u1"), ("flap_cmd_deg", "f4", (blades,)),
+        ("flap_deg", "f4", (blades,)), ("servo_power_w", "f4", (blades,)),
+        ("lateness_us", "f4"), ("compute_us", "f4"),
     ])
 
 

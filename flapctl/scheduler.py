@@ -199,8 +199,8 @@ class Controller:
         compute_us = (time.perf_counter_ns() - t0) * 1e-3
         if self.runlog is not None:
             self.runlog.append_tick((
-                s.t_s, est.total, math.degrees(theta), omega, tsr, flow, s.torque_nm, self.brake_nm,
-                int(state), tuple(cmd), tuple(s.flap_deg), tuple(power),
+                s.t_s, est.total, math.degrees(theta), omega, tsr, flow, s.torque_nm, s.thrust_n,
+                self.brake_nm, int(state), tuple(cmd), tuple(s.flap_deg), tuple(power),
                 self.clock.lateness_ns * 1e-3, compute_us))
         for listener in self._listeners:
             listener(self, s)

@@ -60,7 +60,7 @@ def test_fault_ends_safe(flume_module, morph, tmp_path, kind, extra, reasons, bo
     settled = after[after["t_s"] > t_trip + ramp_s + 0.01]
     assert len(settled) > 0 and np.all(settled["flap_cmd_deg"] == 0.0)
     step = np.abs(np.diff(after["flap_cmd_deg"], axis=0))
-    assert np.all(step <= 0.5 * profile.servos[0].rate_limit_deg_s / profile.control.rate_hz + 1e-9)
+    assert np.all(step <= 0.5 * profile.servos[0].rate_limit_deg_s / profile.control.rate_hz + 1e-5)   # float32 log
     # brake ramps to its holding torque (controlled stop) within 2 s of full range + loop period
     hold = profile.brake.hold_torque_nm
     late = after[after["t_s"] > t_trip + 2.1]

@@ -14,7 +14,7 @@ from flapctl.runlog import open_run
 
 
 def _row(k, n=3):
-    return (k * 1e-3, k, 0.1 * k, 8.0, 2.0, 0.6, 0.2, 0.1, 2, (1.0,) * n, (0.9,) * n, (0.2,) * n,
+    return (k * 1e-3, k, 0.1 * k, 8.0, 2.0, 0.6, 0.2, float('nan'), 0.1, 2, (1.0,) * n, (0.9,) * n, (0.2,) * n,
             3.0, 5.0)
 
 

@@ -16,7 +16,7 @@ from flapctl.runlog import RunLog, open_run
 
 
 def _row(k, n=3):
-    return (k * 1e-3, k, 0.1 * k, 8.0, 2.0, 0.6, 0.2, 0.1, 2, (1.0,) * n, (0.9,) * n, (0.2,) * n, 0.0, 5.0)
+    return (k * 1e-3, k, 0.1 * k, 8.0, 2.0, 0.6, 0.2, float('nan'), 0.1, 2, (1.0,) * n, (0.9,) * n, (0.2,) * n, 0.0, 5.0)
 
 
 def test_round_trip(tmp_path):
@@ -49,7 +49,7 @@ def test_kill_9_keeps_flushed_rows(tmp_path):
         import sys
         from flapctl.runlog import RunLog
         log = RunLog({str(path)!r}, 3, {{}}, chunk_rows=100)
-        row = (0.0, 0, 0.0, 8.0, 2.0, 0.6, 0.2, 0.1, 2, (1.0,)*3, (0.9,)*3, (0.2,)*3, 0.0, 5.0)
+        row = (0.0, 0, 0.0, 8.0, 2.0, 0.6, 0.2, float('nan'), 0.1, 2, (1.0,)*3, (0.9,)*3, (0.2,)*3, 0.0, 5.0)
         for k in range(1_000_000):
             log.append_tick(row)
             if log.rows_written >= 1000 and k % 100 == 50:

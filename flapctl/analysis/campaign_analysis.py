@@ -215,7 +215,8 @@ def read_runs(f: h5py.File) -> tuple[list[RunRecord], list[str]]:
         thrust = g["thrust_n"][:][used] if "thrust_n" in g else None
         phase = {k: g["phase"][k][:] for k in g["phase"]} if "phase" in g else {}
         summary = json.loads(_attr_str(a.get("summary", "{}")) or "{}")
-        flags = list(summary.get("flags", []))
+        # the run summary's open-flow Betz check is replaced by the blockage-aware audit here
+        flags = [fl for fl in summary.get("flags", []) if "is above the Betz limit" not in fl]
         if status == "unsettled":
             flags.append(f"{name}: {_attr_str(a.get('note', ''))}")
         runs.append(RunRecord(
@@ -408,7 +409,13 @@ def _mean_phase(runs: list[RunRecord]) -> dict[str, np.ndarray]:
     out = {}
     for k in keys:
         arrs = [r.phase[k] for r in runs]
-        out[k] = arrs[0] if k == "azimuth_deg" else np.nanmean(np.stack(arrs), axis=0)
+        stack = np.stack(arrs)
+        if k == "azimuth_deg":
+            out[k] = arrs[0]
+        elif np.isfinite(stack).any(axis=0).all():
+            out[k] = np.nanmean(stack, axis=0)
+        else:
+            out[k] = np.full(stack.shape[1:], np.nan)    # no tick data in any run
     return out
 
 

@@ -736,32 +736,36 @@ def _optimise(spec: SweepSpec, ev: _Evaluator) -> None:
                            init="latinhypercube", tol=0.0)
 
 
-def run_sweep(spec: SweepSpec | str | Path, out_dir: str | Path, *, workers: int = 2,
+def run_sweep(spec: SweepSpec | str | Path, out_dir: str | Path, *, workers: int | None = None,
               scheduler: str | None = None, progress: Callable[[float], None] | None = None,
               plots: bool = True) -> SweepResult:
     """Run (or resume) a sweep; ``scheduler`` "tcp://HOST:PORT" runs the cases on a Dask cluster.
 
-    ``workers``: pool processes, or with Dask the most cases queued at once.  ``progress`` is
+    ``workers``: pool processes (default: the CPU count), or with Dask the most cases queued at
+    once (default: all).  ``progress`` is
     called with the finished fraction after each case (its row is on disk by then).
     """
     if not isinstance(spec, SweepSpec):
         spec = load_spec(spec)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
-        raise ProfileError("--workers", "workers", workers, "an integer >= 1")
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise ProfileError("command line", "--workers", workers, "an integer >= 1")
     out = Path(out_dir)
     results = _ResultsFile(out / RESULTS_NAME, spec)
     reused_before = len(results.rows)
     try:
         backend = (_DaskBackend(scheduler, workers, spec.sha256) if scheduler
-                   else _PoolBackend(workers))
+                   else _PoolBackend(workers or os.cpu_count() or 1))
         jobs = spec_cases(spec) if spec.search.method != "optimize" else []
         total = len(jobs) if jobs else spec.search.n
         ev = _Evaluator(spec, results, backend, total, progress)
-        with backend:
-            if spec.search.method == "optimize":
-                _optimise(spec, ev)
-            else:
-                ev.evaluate(jobs)
+        if spec.search.method != "optimize" and all(j.key in results.rows for j in jobs):
+            ev.evaluate(jobs)                 # all done already: no workers needed
+        else:
+            with backend:
+                if spec.search.method == "optimize":
+                    _optimise(spec, ev)
+                else:
+                    ev.evaluate(jobs)
     finally:
         results.close()
     rows = sorted(results.rows.values(), key=lambda r: r["key"])
