@@ -69,7 +69,7 @@ def main() -> None:
         times = {}
         for n in (1, 2):
             with LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                              dashboard_address=None) as cluster:
+                              dashboard_address="127.0.0.1:0") as cluster:
                 t0 = time.perf_counter()
                 res = run_sweep(_spec(d, f"dask{n}", args.dask_cases), d / f"dask{n}",
                                 workers=args.dask_cases, scheduler=cluster.scheduler_address, plots=False)

@@ -185,6 +185,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         from .rtrun import run_paced_sil
         out = run_paced_sil(profile, schedule, tsr=tsr, duration_s=args.duration, out=args.out,
                             flow_m_s=args.flow, options=_rt_options(args), seed=args.seed,
+                            lead=_lead(args),
                             settle_s=args.settle, progress=progress, label=label, attach=attach,
                             start=start)
     elif backend == "bridge":
@@ -196,6 +197,7 @@ def cmd_run(args: argparse.Namespace) -> int:
                                  duration_s=args.duration, out=args.out,
                                  density_kg_m3=fluid.density_kg_m3, flow_m_s=args.flow,
                                  settle_s=args.settle, progress=progress, label=label,
+                                 lead=_lead(args),
                                  backend=f"bridge:{ports.mode}:{ports.endpoint}", attach=attach,
                                  start=start)
         else:
@@ -203,14 +205,14 @@ def cmd_run(args: argparse.Namespace) -> int:
             out = run_realtime(profile, schedule, ports, tsr=tsr, duration_s=args.duration,
                                out=args.out, density_kg_m3=fluid.density_kg_m3,
                                options=_rt_options(args), settle_s=args.settle, progress=progress,
-                               label=label, attach=attach, start=start)
+                               label=label, attach=attach, start=start, lead=_lead(args))
     else:   # can
         from .ports.can import CanPorts
         from .rtrun import run_realtime
         out = run_realtime(profile, schedule, CanPorts(profile), tsr=tsr, duration_s=args.duration,
                            out=args.out, density_kg_m3=fluid.density_kg_m3,
                            options=_rt_options(args), settle_s=args.settle, progress=progress,
-                           label=label, attach=attach, start=start)
+                           label=label, attach=attach, start=start, lead=_lead(args))
     s = out.summary
     print(table(SUMMARY_HEADERS, [_summary_rows(Path(args.out).name, s)]))
     for flag in s.flags:
@@ -225,6 +227,13 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0 if not out.trips else 3
 
 
+def _lead(args):
+    if getattr(args, "lead_table", None):
+        from .lead import load_lead_table
+        return load_lead_table(args.lead_table)
+    return None
+
+
 def run_sil_from_args(profile, schedule, tsr, args, out_path, label, faults=None, attach=None,
                       start=True):
     from .runner import run_sil
@@ -232,7 +241,7 @@ def run_sil_from_args(profile, schedule, tsr, args, out_path, label, faults=None
     return run_sil(profile, schedule, tsr=tsr, duration_s=args.duration, out=out_path,
                    flow_m_s=args.flow, settle_s=args.settle, seed=args.seed,
                    progress=Progress(f"{label:>10}"), label=label, faults=faults, attach=attach,
-                   start=start)
+                   start=start, lead=_lead(args))
 
 
 # -- demo --------------------------------------------------------------------------------------
@@ -487,6 +496,8 @@ def _add_run_options(p: argparse.ArgumentParser, duration: float) -> None:
     p.add_argument("--settle", type=float, default=5.0, metavar="SECONDS",
                    help="seconds left out of the summary while the rotor settles")
     p.add_argument("--seed", type=int, default=None, help="SIL random seed (default: the profile's)")
+    p.add_argument("--lead-table", metavar="CSV",
+                   help="phase lead versus rotor speed (speed_rad_s,lead_deg; from `flapctl tune lead`)")
 
 
 def _add_rt_options(p: argparse.ArgumentParser) -> None:

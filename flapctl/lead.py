@@ -17,7 +17,7 @@ import bisect
 import math
 from collections.abc import Sequence
 
-__all__ = ["LeadModel"]
+__all__ = ["LeadModel", "load_lead_table"]
 
 
 class LeadModel:
@@ -65,3 +65,36 @@ class LeadModel:
         if self.mode == "dead_time":
             return f"{math.degrees(self.angle_rad):.2f} deg + speed x {self.dead_time_s * 1e3:.2f} ms"
         return f"table of {len(self._speeds)} speeds"
+
+
+def load_lead_table(path) -> LeadModel:
+    """A ``table`` lead from a CSV ``speed_rad_s,lead_deg`` (as ``flapctl tune lead`` writes it)."""
+    import csv
+    from pathlib import Path
+
+    from .errors import ProfileError
+
+    path = Path(path)
+    try:
+        lines = [ln for ln in path.read_text(encoding="utf-8").splitlines()
+                 if ln.strip() and not ln.lstrip().startswith("#")]
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ProfileError(str(path), "<file>", str(path), f"a readable lead table ({exc})") from exc
+    rows = list(csv.reader(lines))
+    if not rows or [c.strip() for c in rows[0]] != ["speed_rad_s", "lead_deg"]:
+        raise ProfileError(str(path), "header", rows[0] if rows else "<empty>",
+                           "the header speed_rad_s,lead_deg")
+    speeds, leads = [], []
+    for k, row in enumerate(rows[1:], start=2):
+        try:
+            w, d = (float(c) for c in row)
+        except ValueError:
+            raise ProfileError(str(path), f"row {k}", row, "two numbers: speed_rad_s, lead_deg") from None
+        if not (math.isfinite(w) and math.isfinite(d)) or (speeds and w <= speeds[-1]) or abs(d) > 180:
+            raise ProfileError(str(path), f"row {k}", row,
+                               "finite numbers, speeds strictly increasing, |lead| <= 180 deg")
+        speeds.append(w)
+        leads.append(d)
+    if not speeds:
+        raise ProfileError(str(path), "rows", 0, "at least one speed_rad_s,lead_deg row")
+    return LeadModel("table", table_speed_rad_s=speeds, table_lead_deg=leads)

@@ -199,6 +199,12 @@ class Control:
     lead_dead_time_s: float = num(0.0, 1.0, default=0.0, doc="lead as a time (turned into angle)")
     slew_limit_deg_s: float = num(0.0, 1e5, lo_open=True, default=1e5,
                                   doc="command slew limit (clamped to each servo's rate limit)")
+    trigger: str = choice("rate", "azimuth", default="rate",
+                          doc="send flap commands every tick, or at each azimuth step")
+    azimuth_step_deg: float = num(0.1, 90.0, default=1.0,
+                                  doc="azimuth trigger: one command per step of predicted azimuth")
+    max_command_rate_hz: float = num(1.0, 20000.0, default=500.0,
+                                     doc="azimuth trigger: at most this many commands per second")
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -74,7 +74,15 @@ class Controller:
         self._brake_ramp = profile.brake.max_torque_nm * self.dt / 2.0   # full range in 2 s
         self._hold_at_once = profile.limits.stop_category == "hold"
         self._pitch = TWO_PI / n
+        ctl = profile.control
+        self._by_azimuth = ctl.trigger == "azimuth"
+        self._az_step = math.radians(ctl.azimuth_step_deg)
+        self._min_gap_s = 1.0 / ctl.max_command_rate_hz
+        self._last_bin = -1
+        self._last_send_t = float("-inf")
+        self.commands_sent = 0
         self.cmd = [0.0] * n
+        self.sent = self.cmd if not self._by_azimuth else [0.0] * n
         self.power = [0.0] * n
         self.tick = 0
         self.t_s = 0.0
@@ -157,7 +165,25 @@ class Controller:
                 prev = cmd[i]
                 step = slew[i]
                 cmd[i] = prev - step if prev > step else (prev + step if prev < -step else 0.0)
-        self.ports.command_flaps(cmd)
+        if self._by_azimuth and state == State.RUNNING:
+            # azimuth trigger: one command each time the azimuth predicted for the next tick
+            # enters a new step, at most max_command_rate_hz (the lookup above has the lead in it)
+            b = int((theta + omega * dt) // self._az_step)
+            if b != self._last_bin and s.t_s - self._last_send_t >= self._min_gap_s - 1e-12:
+                self._last_bin = b
+                self._last_send_t = s.t_s
+                sent = self.sent
+                for i in range(n):
+                    sent[i] = cmd[i]
+                self.ports.command_flaps(sent)
+                self.commands_sent += 1
+        else:
+            if self._by_azimuth:
+                sent = self.sent
+                for i in range(n):
+                    sent[i] = cmd[i]
+            self.ports.command_flaps(cmd)
+            self.commands_sent += 1
         if state != State.FAULT:
             self.ports.heartbeat()          # a dead or faulted controller goes silent
         if self.tick % self.brake_every == 0:
@@ -200,7 +226,7 @@ class Controller:
         if self.runlog is not None:
             self.runlog.append_tick((
                 s.t_s, est.total, math.degrees(theta), omega, tsr, flow, s.torque_nm, s.thrust_n,
-                self.brake_nm, int(state), tuple(cmd), tuple(s.flap_deg), tuple(power),
+                self.brake_nm, int(state), tuple(self.sent), tuple(s.flap_deg), tuple(power),
                 self.clock.lateness_ns * 1e-3, compute_us))
         for listener in self._listeners:
             listener(self, s)

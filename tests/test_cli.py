@@ -108,3 +108,18 @@ def test_kill_9_leaves_a_readable_log(tmp_path):
     t = run.ticks["t_s"]
     assert len(t) >= 30_000 - 1000                # 25 % of 120 s at 1 kHz, less one flush interval
     assert np.allclose(np.diff(t), 1e-3)
+
+
+def test_lead_table_from_file_is_used(tmp_path):
+    table = tmp_path / "lead.csv"
+    table.write_text("# lead versus speed\nspeed_rad_s,lead_deg\n5.0,10\n10.0,20\n")
+    out = tmp_path / "lead.h5"
+    r = flapctl("run", "--profile", FLUME, "--schedule", MORPH, "--lead-table", str(table),
+                "--duration", "3", "--settle", "1", "--out", str(out))
+    assert r.returncode == 0, r.stderr
+    assert open_run(out).attrs["lead"] == "table of 2 speeds"
+    bad = tmp_path / "bad.csv"
+    bad.write_text("speed_rad_s,lead_deg\n5.0,10\n4.0,20\n")
+    r = flapctl("run", "--profile", FLUME, "--lead-table", str(bad), "--duration", "1",
+                "--out", str(tmp_path / "x.h5"))
+    assert r.returncode == 2 and "bad.csv: row 3" in r.stderr

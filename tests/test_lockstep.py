@@ -107,3 +107,22 @@ def test_neutral_run_uses_less_actuator_energy(flume, tmp_path):
         flume.source.replace("demo_flume_3blade.toml", "schedules/demo_morph.toml"), 3),
         tsr=2.5, duration_s=6.0, out=None, settle_s=2.0)
     assert morph.summary.actuator_power_w > neutral.summary.actuator_power_w
+
+
+def test_azimuth_triggered_commands(flume):
+    # azimuth trigger: one command per azimuth step of the predicted azimuth, capped in rate
+    # (common practice, no source); the flaps still follow the schedule
+    import dataclasses
+    profile = dataclasses.replace(flume, control=dataclasses.replace(
+        flume.control, trigger="azimuth", azimuth_step_deg=2.0, max_command_rate_hz=300.0))
+    object.__setattr__(profile, "source", flume.source)
+    schedule = Schedule.load(flume.source.replace("demo_flume_3blade.toml", "schedules/demo_morph.toml"), 3)
+    out = run_sil(profile, schedule, tsr=2.5, duration_s=4.0, out=None, settle_s=1.0)
+    ctl = outcome_ctl = out.controller
+    revs = ctl.estimator.total / profile.encoder.counts_per_rev
+    per_rev = 360.0 / 2.0
+    # between one command per step and the rate cap, never more than either allows
+    assert ctl.commands_sent <= min(revs * per_rev + 5, 4.0 * 300.0 + 5)
+    assert ctl.commands_sent >= 0.9 * min(revs * per_rev, 4.0 * 300.0)
+    assert out.state == State.RUNNING and not out.trips
+    assert out.summary.cp_net > 0.25

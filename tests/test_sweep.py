@@ -156,7 +156,7 @@ def test_best_tracking_lead_matches_harmonic_lead_design(full):
 def test_dask_cluster_gives_the_same_table(full, work):
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address="127.0.0.1:0") as cluster:
         result = run_sweep(work / "spec50.toml", work / "dask", workers=50,
                            scheduler=cluster.scheduler_address, plots=False)
     assert result.ran == 50
