@@ -603,7 +603,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--keys", metavar="FILE", help="this operator's CURVE secret key file")
     p.set_defaults(func=cmd_watch)
 
-    from . import cli_campaign
+    from . import cli_campaign, cli_tune
+    cli_tune.register(sub)
     cli_campaign.register(sub)
 
     p = sub.add_parser("safety", help="print the safety cautions")
