@@ -189,23 +189,26 @@ def cmd_run(args: argparse.Namespace) -> int:
                             settle_s=args.settle, progress=progress, label=label, attach=attach,
                             start=start)
     elif backend == "bridge":
-        from .ports.bridge import BridgeClock, BridgePorts
-        ports = BridgePorts(profile, endpoint=args.bridge)
-        if ports.mode == "lockstep" or not args.realtime:
-            from .runner import run_with_ports
-            out = run_with_ports(profile, schedule, ports, BridgeClock(ports), tsr=tsr,
-                                 duration_s=args.duration, out=args.out,
-                                 density_kg_m3=fluid.density_kg_m3, flow_m_s=args.flow,
-                                 settle_s=args.settle, progress=progress, label=label,
-                                 lead=_lead(args),
-                                 backend=f"bridge:{ports.mode}:{ports.endpoint}", attach=attach,
-                                 start=start)
-        else:
-            from .rtrun import run_realtime
-            out = run_realtime(profile, schedule, ports, tsr=tsr, duration_s=args.duration,
-                               out=args.out, density_kg_m3=fluid.density_kg_m3,
-                               options=_rt_options(args), settle_s=args.settle, progress=progress,
-                               label=label, attach=attach, start=start, lead=_lead(args))
+        import dataclasses
+
+        from .ports.bridge import BridgeClock, BridgeOptions, BridgePorts, bridge_options
+        from .schema import load_section
+        if profile.bus.backend == "bridge":
+            opts = bridge_options(profile, args.bridge)
+        else:    # a profile of another backend driven over the bridge: the endpoint alone
+            opts = load_section(BridgeOptions, {"endpoint": args.bridge}, "command line", "--bridge")
+        if args.realtime:
+            opts = dataclasses.replace(opts, mode="free")
+        ports = BridgePorts(profile, options=opts)
+        from .runner import run_with_ports
+        # both modes are paced by the bridge itself (lockstep: a step per tick; free: its readings)
+        out = run_with_ports(profile, schedule, ports, BridgeClock(ports), tsr=tsr,
+                             duration_s=args.duration, out=args.out,
+                             density_kg_m3=fluid.density_kg_m3, flow_m_s=args.flow,
+                             settle_s=args.settle, progress=progress, label=label,
+                             lead=_lead(args),
+                             backend=f"bridge:{ports.mode}:{ports.endpoint}", attach=attach,
+                             start=start)
     else:   # can
         from .ports.can import CanPorts
         from .rtrun import run_realtime

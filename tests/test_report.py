@@ -64,7 +64,7 @@ def test_analyze_gives_a_verdict_per_tsr(campaign_file):
         assert 0.0 < p.cp_gross < res.cp_bound
         # SIL servo power is telemetry: morph spends actuator energy, the baseline hardly any
         assert (p.cp_actuator > 1e-4) == (p.mode == "morph")
-        assert p.thrust_source == "estimated"          # the run log has no streamwise force
+        assert p.thrust_source == "measured"           # the SIL rig reports its streamwise force
         assert p.cp_gross_corrected < p.cp_gross       # blockage B = 0.2 inflates Cp
 
 
