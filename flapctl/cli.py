@@ -157,6 +157,44 @@ def _operator_attach(args):
     return attach
 
 
+def _learning_attach(args, profile, tsr):
+    """An attach hook that plugs per-blade ILC into the controller, or None."""
+    if not (args.ilc or args.ilc_load):
+        return None
+    from .tune.ilc_loop import LoopLearning
+
+    omega = tsr * (args.flow or profile.fluid.design_speed_m_s) / profile.geometry.radius_m
+    learning = LoopLearning.for_profile(profile, omega, gamma=args.ilc_gamma, load=args.ilc_load)
+    if args.ilc_freeze:
+        learning.freeze()
+
+    def attach(ctl):
+        ctl.set_learning(learning)
+
+        def detach():
+            for i, h in enumerate(learning.history):
+                finite = [v for v in h if v == v]
+                if finite:
+                    print(f"learning, blade {i}: RMS error {finite[0]:.3f} deg in its first revolution, "
+                          f"{finite[-1]:.3f} deg in its last ({len(finite)} revolutions)", file=sys.stderr)
+            if args.ilc_save:
+                for path in learning.save(args.ilc_save):
+                    print(f"learned correction saved: {path}", file=sys.stderr)
+        return detach
+    return attach
+
+
+def _combine(*hooks):
+    hooks = [h for h in hooks if h is not None]
+    if not hooks:
+        return None
+
+    def attach(ctl):
+        undo = [h(ctl) for h in hooks]
+        return lambda: [u() for u in reversed(undo) if u is not None]
+    return attach
+
+
 def cmd_run(args: argparse.Namespace) -> int:
     from .fluid import fluid_properties
 
@@ -174,7 +212,7 @@ def cmd_run(args: argparse.Namespace) -> int:
                                "profile whose bus.backend is \"sim\", without --bridge or --realtime")
         from sim.faults import load_scenario
         faults = load_scenario(args.faults, profile.blades)
-    attach = _operator_attach(args)
+    attach = _combine(_operator_attach(args), _learning_attach(args, profile, tsr))
     start = not args.operator
     label = Path(args.out).stem
     progress = Progress(f"{label:>10}")
@@ -536,6 +574,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--realtime", action="store_true",
                    help="pace by the wall clock (the SIL rig in process, or a free-running bridge)")
     _add_rt_options(p)
+    g = p.add_argument_group("learning (iterative learning control of each flap)")
+    g.add_argument("--ilc", action="store_true", help="learn a per-blade correction revolution by revolution")
+    g.add_argument("--ilc-gamma", type=float, default=0.5, metavar="G", help="learning gain (default 0.5)")
+    g.add_argument("--ilc-load", metavar="FILE", help="start from corrections saved with --ilc-save (the same FILE)")
+    g.add_argument("--ilc-save", metavar="FILE", help="save the learned corrections (one file per blade)")
+    g.add_argument("--ilc-freeze", action="store_true", help="apply the loaded correction without learning")
     g = p.add_argument_group("operator interface")
     g.add_argument("--operator", action="store_true",
                    help="serve operator commands and telemetry; the operator arms and starts the run")

@@ -81,6 +81,7 @@ class Controller:
         self._last_bin = -1
         self._last_send_t = float("-inf")
         self.commands_sent = 0
+        self.learning = None        # optional per-blade learning correction (flapctl.tune.ilc_loop)
         self.cmd = [0.0] * n
         self.sent = self.cmd if not self._by_azimuth else [0.0] * n
         self.power = [0.0] * n
@@ -99,6 +100,12 @@ class Controller:
         if new in (State.STOPPING, State.FAULT, State.SAFE):
             self.brake.stop()
 
+    def set_learning(self, learning) -> None:
+        """Plug in a learning correction (``correction(blade, az)`` / ``observe(blade, az, deg)``)."""
+        if learning is not None:
+            learning.table = self.table
+        self.learning = learning
+
     def add_listener(self, listener: Callable) -> None:
         """Call ``listener(controller, sample)`` after every tick (telemetry, operator interface)."""
         self._listeners = (*self._listeners, listener)
@@ -113,6 +120,8 @@ class Controller:
         self.brake.set_tsr(tsr)
         if self.schedule.tsr_axis:
             self.table = self.schedule.table(tsr)
+            if self.learning is not None:
+                self.learning.table = self.table
 
     # -- the tick -----------------------------------------------------------------------------
     def run_once(self) -> None:
@@ -145,8 +154,13 @@ class Controller:
             at = self.table.at
             pitch = self._pitch
             travel, slew = self._travel, self._slew
+            learn = self.learning
             for i in range(n):
-                d = at(i, theta + i * pitch + lead)
+                az_i = theta + i * pitch
+                d = at(i, az_i + lead)
+                if learn is not None:
+                    learn.observe(i, az_i, s.flap_deg[i])
+                    d += learn.correction(i, az_i)
                 lim = travel[i]
                 if d > lim:
                     d = lim

@@ -225,3 +225,29 @@ def test_constructor_rejects_bad_settings() -> None:
     with pytest.raises(ProfileError) as info:
         ilc.update([0.0] * (BINS - 1))
     assert info.value.key == "measured_error_per_bin"
+
+
+def test_learning_in_the_running_controller_cuts_tracking_error():
+    # ILC inside the real Controller on the lockstep SIL rig, lead switched off so that the learner
+    # has to find it: the RMS error (schedule - measured flap) of the last revolutions falls well
+    # below the first's and below 5 % of the schedule amplitude (8 deg) (Arimoto et al. 1984;
+    # Bristow et al. 2006, from memory)
+    import dataclasses
+    from pathlib import Path
+    from flapctl.lead import LeadModel
+    from flapctl.profile import load_profile
+    from flapctl.runner import run_sil
+    from flapctl.schedule import Schedule
+    from flapctl.tune.ilc_loop import LoopLearning
+    root = Path(__file__).resolve().parent.parent / "hw_profiles"
+    profile = load_profile(root / "demo_flume_3blade.toml")
+    schedule = Schedule.load(root / "schedules" / "demo_morph.toml", 3)
+    omega = profile.fluid.design_tsr * profile.fluid.design_speed_m_s / profile.geometry.radius_m
+    learning = LoopLearning.for_profile(profile, omega, gamma=0.6)
+    out = run_sil(profile, schedule, tsr=2.5, duration_s=18.0, out=None, settle_s=1.0,
+                  lead=LeadModel("none"), attach=lambda ctl: ctl.set_learning(learning))
+    hist = [h for h in learning.history[0] if h == h]
+    assert len(hist) >= 15
+    assert hist[-1] < 0.3 * hist[0]
+    assert max(hist[-3:]) < 0.05 * 8.0
+    assert out.summary.cp_net > 0.25
