@@ -8,6 +8,7 @@ which are redrawn from its results file on every (resumed) run.
 from __future__ import annotations
 
 import argparse
+import sys
 import logging
 import math
 import os
@@ -80,32 +81,71 @@ def _signal(args: argparse.Namespace, t: np.ndarray) -> tuple[np.ndarray, str]:
     return excite.multisine(t, freqs, amp), f"multisine of 12 tones {f0:g}-{f1:g} Hz, peak {amp:g} deg"
 
 
+def _excite_ports(profile, args, dt):
+    """(ports, clock, backend) to excite through: the SIL rig, a bridge, or the profile's CAN bus."""
+    from .clock import VirtualClock
+    from .fluid import fluid_properties
+
+    if args.bridge:
+        from .ports.bridge import BridgeClock, BridgeOptions, BridgePorts
+        from .schema import load_section
+        opts = load_section(BridgeOptions, {"endpoint": args.bridge}, "command line", "--bridge")
+        ports = BridgePorts(profile, options=opts)
+        return ports, BridgeClock(ports), f"bridge:{args.bridge}"
+    if args.rig:
+        if profile.bus.backend != "can":
+            raise ProfileError(profile.source, "bus.backend", profile.bus.backend,
+                               '"can" for --rig (or use --bridge ENDPOINT)')
+        from .ports.can import CanPorts
+        from .rtclock import RealtimeClock
+        clock = RealtimeClock(int(round(dt * 1e9)))
+        return CanPorts(profile, clock=clock), clock, "can"
+    f = profile.fluid
+    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
+    from .ports import backend_class
+    rig = backend_class("sim", profile.source)(
+        profile, density_kg_m3=fluid.density_kg_m3, viscosity_m2_s=fluid.kinematic_viscosity_m2_s,
+        dt_s=dt, initial_speed_rad_s=0.0, flow_m_s=args.flow)
+    return rig, VirtualClock(int(round(dt * 1e9)), rig.step), f"sim (flow {args.flow:g} m/s)"
+
+
 def cmd_excite(args: argparse.Namespace) -> int:
-    """Drive one SIL servo of the profile through an excitation signal; write the record (HDF5)."""
+    """Drive one servo of the rig (or the SIL rig) through an excitation signal; write the record."""
     import h5py
 
+    from .console import SAFETY_NOTICE, SAFETY_SHORT
     from .profile import load_profile
-    from sim.rig import servo_params
-    from .tune.excite import excite_sil
+    from .tune.excite import excite_ports
 
     profile = load_profile(args.profile)
     blade = _blade(profile, args.blade, profile.source)
     if not args.seconds > 0.0:
         raise ProfileError("command line", "--seconds", args.seconds, "a record length > 0 s")
+    if abs(args.amplitude) > profile.servos[blade].travel_deg:
+        raise ProfileError("command line", "--amplitude", args.amplitude,
+                           f"at most the servo's travel {profile.servos[blade].travel_deg:g} deg")
     out = _new_file(args.out, "--out", (".h5", ".hdf5"))
     dt = _dt(profile)
     t = np.arange(int(round(args.seconds / dt))) * dt
     signal, description = _signal(args, t)
-    params = servo_params(profile.servos[blade])
-    tt, cmd, fb, cur, volt = excite_sil(params, signal, dt)
+    ports, clock, backend = _excite_ports(profile, args, dt)
+    print(SAFETY_NOTICE if not backend.startswith("sim") else SAFETY_SHORT, file=sys.stderr)
+    try:
+        tt, cmd, fb, cur, volt = excite_ports(ports, clock, blade, signal, profile.brake.hold_torque_nm)
+    finally:
+        ports.close()
+        clock.close()
+    tt = tt - tt[0]
     with h5py.File(out, "x") as f:
         for name, data in (("t_s", tt), ("command_deg", cmd), ("feedback_deg", fb), ("current_a", cur),
                            ("voltage_v", volt)):
             f.create_dataset(name, data=data)
         f.attrs.update({"format": EXCITE_FORMAT, "dt_s": dt, "blade": blade, "signal": description,
-                        "profile_source": profile.source, "profile_text": profile.text, "backend": "sim"})
-    print(f"{profile.name}, blade {blade}: {description}, {tt.size} ticks of {dt * 1e3:g} ms")
-    print(f"peak flap {np.max(np.abs(fb)):.2f} deg, peak current {np.max(np.abs(cur)):.3f} A")
+                        "profile_source": profile.source, "profile_text": profile.text, "backend": backend})
+    print(f"{profile.name}, blade {blade} ({backend}, rotor held by the brake): {description}, "
+          f"{tt.size} ticks of {dt * 1e3:g} ms")
+    peak_i = np.nanmax(np.abs(cur)) if np.any(np.isfinite(cur)) else float("nan")
+    print(f"peak flap {np.max(np.abs(fb)):.2f} deg, peak current {peak_i:.3f} A")
     print(f"record: {out}")
     return 0
 
@@ -312,7 +352,7 @@ def register(subparsers) -> argparse.ArgumentParser:
     p = subparsers.add_parser("tune", help="servo identification, lead design, ILC and parameter sweeps")
     sub = p.add_subparsers(dest="tune_command", required=True, metavar="STEP")
 
-    q = sub.add_parser("excite", help="drive one SIL servo with a test signal and record it (HDF5)")
+    q = sub.add_parser("excite", help="drive one servo with a test signal and record it (SIL rig, bridge or CAN)")
     q.add_argument("profile", metavar="PROFILE")
     q.add_argument("--blade", type=int, required=True, metavar="N")
     q.add_argument("--signal", choices=("step", "chirp", "multisine"), required=True)
@@ -321,6 +361,10 @@ def register(subparsers) -> argparse.ArgumentParser:
     q.add_argument("--f1", type=float, default=20.0, metavar="HZ", help="highest frequency")
     q.add_argument("--seconds", type=float, default=4.0, metavar="S", help="record length")
     q.add_argument("--out", required=True, metavar="LOG.h5", help="record to create (never overwritten)")
+    q.add_argument("--bridge", metavar="ENDPOINT", help="excite through an I/O bridge (or `python -m sim.server`)")
+    q.add_argument("--rig", action="store_true", help="excite on the rig through the profile's CAN bus")
+    q.add_argument("--flow", type=float, default=0.0, metavar="M_S",
+                   help="SIL rig: flow speed during the test (default 0: still fluid, no hinge load)")
     q.set_defaults(func=cmd_excite)
 
     q = sub.add_parser("identify", help="fit dead time, natural frequency, damping and rate limit")

@@ -189,6 +189,8 @@ class VirtualRig(RigPorts):
 
     def _refresh_aero(self) -> None:
         u = self.flow.mean_m_s
+        if u <= 0.0:
+            return          # still fluid (a bench test with the flow off): no induction to solve
         # the speed averaged over the revolution so far: the torque ripple is phase-locked to the
         # azimuth, so an instantaneous speed would bias the induction's operating point
         speed = self._rev_speed if self._rev_speed is not None else self.speed_rad_s

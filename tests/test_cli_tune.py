@@ -107,3 +107,25 @@ values = [0.5, 1.0]
     assert (out / "results.csv").exists() and (out / "tracking_vs_speed.png").exists()
     assert _run("sweep", str(spec), "--workers", "2", "--out-dir", str(out)) == 0
     assert "(0 run now, 2 already there)" in capsys.readouterr().out
+
+
+def test_excite_runs_over_the_bridge_the_same_way(tmp_path):
+    # the rig path: the same excitation through BridgePorts against the SIL server process
+    import subprocess
+    import sys
+    proc = subprocess.Popen([sys.executable, "-m", "sim.server", "--profile", str(PROFILE), "--bind",
+                             "tcp://127.0.0.1:*"], stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                            text=True)
+    try:
+        ready = proc.stdout.readline().split()
+        assert ready and ready[0] == "ready", ready
+        log = tmp_path / "bridge.h5"
+        assert _run("excite", str(PROFILE), "--blade", "0", "--signal", "chirp", "--f0", "0.5",
+                    "--f1", "8", "--seconds", "2", "--bridge", ready[1], "--out", str(log)) == 0
+        with h5py.File(log, "r") as f:
+            assert f.attrs["backend"].startswith("bridge:")
+            fb = f["feedback_deg"][:]
+        assert 3.0 < abs(fb).max() <= 5.5          # the flap followed a 5 deg chirp
+    finally:
+        proc.terminate()
+        proc.wait(timeout=20)

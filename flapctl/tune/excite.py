@@ -19,7 +19,7 @@ import numpy as np
 from flapctl.errors import ProfileError
 from sim.servo import ServoModel, ServoParams
 
-__all__ = ["step", "chirp", "multisine", "excite_sil", "CHIRP_METHODS"]
+__all__ = ["step", "chirp", "multisine", "excite_sil", "excite_ports", "CHIRP_METHODS"]
 
 log = logging.getLogger(__name__)
 
@@ -154,3 +154,38 @@ def excite_sil(servo_params: ServoParams, signal: object, dt_s: float,
     if limited:
         log.info("%s: current or voltage limited the flap on %d of %d ticks", servo_params.key, limited, n)
     return t, cmd.copy(), feedback, current, voltage
+
+
+def excite_ports(ports, clock, blade: int, signal: object, brake_nm: float
+                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Drive one blade's flap through ``signal`` (deg per tick) over any rig ports.
+
+    The same code on the rig (CAN or bridge ports, a real-time clock) and on the SIL rig (its
+    ports, a virtual clock).  The other flaps are held neutral and the brake at ``brake_nm`` (hold
+    the rotor still); the heartbeat is sent every tick.  Feedback k is read before command k is
+    sent, as in the controller.  Ends in the safe state.  Returns (t, command, feedback, current,
+    voltage); current and voltage are NaN when the servo does not report them.
+    """
+    cmd_deg = np.asarray(signal, dtype=float)
+    if cmd_deg.ndim != 1 or not np.all(np.isfinite(cmd_deg)):
+        raise ProfileError("excitation", "signal", "<array>", "a 1-D array of finite flap commands (deg)")
+    n = cmd_deg.size
+    out = np.empty((5, n))
+    command = [0.0] * ports.blades
+    clock.start()
+    ports.command_brake(brake_nm)
+    try:
+        for k in range(n):
+            s = ports.read()
+            out[0, k] = s.t_s
+            out[2, k] = s.flap_deg[blade]
+            out[3, k] = s.servo_current_a[blade]
+            out[4, k] = s.servo_voltage_v[blade]
+            command[blade] = float(cmd_deg[k])
+            ports.command_flaps(command)
+            ports.heartbeat()
+            out[1, k] = command[blade]
+            clock.wait()
+    finally:
+        ports.safe()
+    return out[0], out[1], out[2], out[3], out[4]
