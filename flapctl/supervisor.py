@@ -30,6 +30,8 @@ class State(IntEnum):
     FAULT = 4
 
 
+_FAULT = State.FAULT   # module constant: State.FAULT is a slow attribute lookup per tick
+
 _ALLOWED = {
     ("arm", State.SAFE): State.ARMED,
     ("start", State.ARMED): State.RUNNING,
@@ -106,7 +108,7 @@ class Supervisor:
     def check(self, t_s: float, speed_rad_s: float, tsr: float, torque_nm: float,
               flow_m_s: float) -> bool:
         """Interlocks of one tick; returns True when everything is within limits."""
-        if self.state == State.FAULT:
+        if self.state is _FAULT:
             return False
         # written so that NaN fails every comparison and trips
         if not (abs(torque_nm) < self.torque_range):
@@ -127,7 +129,7 @@ class Supervisor:
     def check_servos(self, t_s: float, dt_s: float, command_deg, feedback_deg, current_a,
                      telemetry_age_s: float) -> bool:
         """Flap tracking (held for the window), over-current, stale telemetry."""
-        if self.state == State.FAULT:
+        if self.state is _FAULT:
             return False
         if not (telemetry_age_s <= self.telemetry_timeout_s):
             self.trip(t_s, "telemetry_timeout", f"servo telemetry {telemetry_age_s * 1e3:.0f} ms old "
@@ -153,7 +155,7 @@ class Supervisor:
 
     def check_encoder(self, t_s: float, step_counts: int, index_errors: int) -> bool:
         """Implausible jumps in one tick and index pulses not one revolution apart."""
-        if self.state == State.FAULT:
+        if self.state is _FAULT:
             return False
         if step_counts > self.encoder_jump_counts or -step_counts > self.encoder_jump_counts:
             self.trip(t_s, "encoder_jump", f"{step_counts} counts in one tick (limit "
