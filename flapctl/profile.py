@@ -55,6 +55,15 @@ class Rotor:
     inertia_kg_m2: float = num(0.0, 1e3, lo_open=True, doc="rotor + shaft + brake inertia")
     coulomb_friction_nm: float = num(0.0, 100.0, default=0.0, doc="bearing friction torque")
     viscous_friction_nm_s: float = num(0.0, 100.0, default=0.0, doc="bearing viscous torque per rad/s")
+    struts: int = num(0, 48, default=0, doc="support struts (arms) turning in the flow, all blades")
+    strut_chord_m: float = num(0.0, 2.0, default=0.0, doc="strut chord (streamwise width)")
+    strut_drag_coefficient: float = num(0.0, 2.0, default=0.0, doc="strut section drag coefficient")
+
+    def strut_drag_factor(self, radius_m: float, density_kg_m3: float) -> float:
+        """k in Q = k w|w|: the struts' drag torque, each strut a radial arm from 0 to R meeting
+        the relative speed w r (flow neglected): Q = N 1/2 rho C_d c w^2 R^4 / 4."""
+        return (self.struts * 0.5 * density_kg_m3 * self.strut_drag_coefficient * self.strut_chord_m
+                * radius_m ** 4 / 4.0)
 
 
 @dataclass(frozen=True, kw_only=True)

@@ -79,7 +79,8 @@ class RotorAero:
     def __init__(self, geometry: RotorGeometry, polar: SectionPolar, rho_kg_m3: float,
                  nu_m2_s: float, induction: str = "dmst", n_tubes: int = 36,
                  curvature: bool = True, dynamic_stall: bool = False,
-                 momentum_correction: str = "buhl") -> None:
+                 momentum_correction: str = "buhl", strut_drag_factor: float = 0.0) -> None:
+        """``strut_drag_factor`` k: parasitic torque of the support struts, Q = -k w|w| (N m)."""
         if induction not in INDUCTION_MODELS:
             raise ProfileError("aero", "induction", induction,
                                "one of " + ", ".join(INDUCTION_MODELS))
@@ -89,6 +90,7 @@ class RotorAero:
         if dynamic_stall:
             gormont_gammas(polar.thickness_ratio)
         self.geometry = geometry
+        self.strut_drag_factor = float(strut_drag_factor)
         self.polar = polar
         self.rho = float(rho_kg_m3)
         self.nu = float(nu_m2_s)
@@ -231,6 +233,8 @@ class RotorAero:
         rotor = torque_a.sum(axis=0)
         mean_q = float(rotor.mean())
         qa = 0.5 * self.rho * g.swept_area_m2 * flow_m_s**2
+        mean_q -= self.strut_drag_factor * omega * abs(omega)      # support struts
+        rotor = rotor - self.strut_drag_factor * omega * abs(omega)
         return SteadyResult(float(tsr), float(flow_m_s), mean_q * omega / (qa * flow_m_s),
                             float(fx_a.sum(axis=0).mean()) / qa, mean_q, theta, torque_a, hinge_a,
                             fx_a, rotor, sol.valid, sol.reason, sol)

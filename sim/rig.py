@@ -91,7 +91,8 @@ class VirtualRig(RigPorts):
         self.aero = aero if aero is not None else RotorAero(
             rotor_geometry(profile), ThinSectionPolar(g.thickness_ratio, g.flap_chord_ratio),
             density_kg_m3, viscosity_m2_s, induction=sim.induction, curvature=sim.flow_curvature,
-            dynamic_stall=sim.dynamic_stall)
+            dynamic_stall=sim.dynamic_stall,
+            strut_drag_factor=profile.rotor.strut_drag_factor(g.radius_m, density_kg_m3))
         self.servos = [ServoModel(servo_params(s), dt_s) for s in profile.servos]
         self.reports_servo_power = all(s.reports_power for s in profile.servos)
         b = profile.brake
@@ -246,6 +247,7 @@ class VirtualRig(RigPorts):
             fx += f
             servo.step(self._flap_cmd[i], h)
         self.thrust_n = fx
+        q_aero -= aero.strut_drag_factor * w * abs(w)       # support struts
         q_brake = self.brake.step(dt_s, self._brake_cmd)
         # rotor: semi-implicit step; friction opposes motion and cannot reverse it
         q_drive = q_aero - q_brake * (1.0 if w >= 0 else -1.0)

@@ -42,7 +42,8 @@ def model_for(profile: Profile, density_kg_m3: float, nu_m2_s: float, *, pitch_d
     sim = profile.sim
     return RotorAero(geom, ThinSectionPolar(g.thickness_ratio, g.flap_chord_ratio), density_kg_m3,
                      nu_m2_s, induction=induction or sim.induction, n_tubes=n_tubes,
-                     curvature=sim.flow_curvature, dynamic_stall=sim.dynamic_stall)
+                     curvature=sim.flow_curvature, dynamic_stall=sim.dynamic_stall,
+                     strut_drag_factor=profile.rotor.strut_drag_factor(g.radius_m, density_kg_m3))
 
 
 def flap_function(schedule, tsr: float):

@@ -3,8 +3,8 @@
 Shared by tests/test_faults.py (assertions) and bench/bench_faults.py (figures).  Each entry:
 (kind, extra keys of the [[fault]] table, acceptable trip reasons, bound in seconds from the
 moment the fault starts to the trip).  The bounds follow from the profile's limits
-(telemetry_timeout_s 0.05 s, tracking 8 deg for 0.25 s, encoder jump 20 deg, max TSR 3.8,
-max speed 120 rpm) plus the physics needed to reach them.
+(telemetry_timeout_s 0.05 s, tracking 8 deg for 0.25 s, encoder jump 20 deg, max TSR 3.6,
+max speed 110 rpm) plus the physics needed to reach them.
 """
 from __future__ import annotations
 
