@@ -37,7 +37,6 @@ import json
 import logging
 import math
 import tempfile
-import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -54,7 +53,7 @@ from .lead import LeadModel
 from .profile import Profile
 from .runlog import open_run, revolution_dtype
 from .schedule import Schedule
-from .schema import choice, load_section, num, text
+from .schema import read_toml, choice, load_section, num, text
 
 __all__ = [
     "CAMPAIGN_FORMAT", "PHASE_BINS", "PLAN_SCHEMA_VERSION", "CampaignError", "CampaignAborted",
@@ -205,15 +204,7 @@ def parse_plan(data: dict, source: str = "<memory>", text_: str = "") -> Plan:
 
 def load_plan(path: str | Path) -> Plan:
     """Read and validate a campaign plan file."""
-    path = Path(path)
-    try:
-        raw = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ProfileError(str(path), "<file>", str(path), f"a readable file ({exc.strerror})") from exc
-    try:
-        data = tomllib.loads(raw)
-    except tomllib.TOMLDecodeError as exc:
-        raise ProfileError(str(path), "<syntax>", str(exc), "valid TOML") from exc
+    data, raw = read_toml(path)
     return parse_plan(data, str(path), raw)
 
 

@@ -14,7 +14,7 @@ from hypothesis import given, settings, strategies as st
 
 import sys, pathlib
 sys.path.insert(0, str(pathlib.Path(__file__).parent))
-from fault_matrix import FAULT_AT_S, MATRIX, RUN_S, run_fault, scenario_for
+from fault_matrix import FAULT_AT_S, MATRIX, RUN_S, run_fault
 from flapctl.errors import ProfileError
 from flapctl.runlog import open_run
 from flapctl.schedule import Schedule

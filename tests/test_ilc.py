@@ -232,7 +232,6 @@ def test_learning_in_the_running_controller_cuts_tracking_error():
     # has to find it: the RMS error (schedule - measured flap) of the last revolutions falls well
     # below the first's and below 5 % of the schedule amplitude (8 deg) (Arimoto et al. 1984;
     # Bristow et al. 2006, from memory)
-    import dataclasses
     from pathlib import Path
     from flapctl.lead import LeadModel
     from flapctl.profile import load_profile

@@ -6,7 +6,6 @@ run log holds every tick.
 """
 from __future__ import annotations
 
-import math
 
 import numpy as np
 import pytest
@@ -118,7 +117,7 @@ def test_azimuth_triggered_commands(flume):
     object.__setattr__(profile, "source", flume.source)
     schedule = Schedule.load(flume.source.replace("demo_flume_3blade.toml", "schedules/demo_morph.toml"), 3)
     out = run_sil(profile, schedule, tsr=2.5, duration_s=4.0, out=None, settle_s=1.0)
-    ctl = outcome_ctl = out.controller
+    ctl = out.controller
     revs = ctl.estimator.total / profile.encoder.counts_per_rev
     per_rev = 360.0 / 2.0
     # between one command per step and the rate cap, never more than either allows

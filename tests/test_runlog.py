@@ -1,13 +1,11 @@
 """The HDF5 run log: readable back, never overwrites, survives kill -9 up to the last flush."""
 from __future__ import annotations
 
-import os
 import signal
 import subprocess
 import sys
 import textwrap
 
-import h5py
 import numpy as np
 import pytest
 

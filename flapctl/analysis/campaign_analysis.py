@@ -41,6 +41,7 @@ import numpy as np
 from scipy import optimize as _opt
 from scipy import stats as _sps
 
+from flapctl.derived import blockage_ratio_of
 from flapctl.energy import BETZ_LIMIT
 from flapctl.errors import FlapctlError
 from flapctl.fluid import fluid_properties
@@ -447,12 +448,7 @@ def analyze(campaign_h5: str | Path) -> CampaignResult:
     level = float(settings["level"])
     act_rel = float(settings["actuator_uncertainty_rel"])
     width = float(settings["tsr_bin_width"])
-    bl = profile.channel
-    B = None
-    if bl is not None:
-        g = profile.geometry
-        B = 2.0 * g.radius_m * g.span_m / (bl.width_m * bl.depth_m)
-    kinds = {m["name"]: m["kind"] for m in modes}
+    B = blockage_ratio_of(profile)
     base = next(m["name"] for m in modes if m["kind"] == "baseline")
     keys = sorted({(r.flow_setpoint_m_s, r.tsr_setpoint) for r in runs})
     points: list[ModeStats] = []
