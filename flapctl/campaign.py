@@ -53,7 +53,7 @@ from .lead import LeadModel
 from .profile import Profile
 from .runlog import open_run, revolution_dtype
 from .schedule import Schedule
-from .schema import read_toml, choice, load_section, num, text
+from .schema import choice, load_document, num, read_toml, text
 
 __all__ = [
     "CAMPAIGN_FORMAT", "PHASE_BINS", "PLAN_SCHEMA_VERSION", "CampaignError", "CampaignAborted",
@@ -192,14 +192,7 @@ class Plan:
 
 def parse_plan(data: dict, source: str = "<memory>", text_: str = "") -> Plan:
     """Validate an already-parsed plan mapping."""
-    version = data.get("schema_version", "<missing>")
-    if isinstance(version, bool) or version != PLAN_SCHEMA_VERSION:
-        raise ProfileError(source, "schema_version", version,
-                           f"{PLAN_SCHEMA_VERSION} (the only plan version this flapctl reads)")
-    plan = load_section(Plan, data, source)
-    object.__setattr__(plan, "source", source)
-    object.__setattr__(plan, "text", text_)
-    return plan
+    return load_document(Plan, data, source, text_, PLAN_SCHEMA_VERSION, "plan")
 
 
 def load_plan(path: str | Path) -> Plan:

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import ProfileError
-from .schema import choice, describe, load_section, num, read_toml, text
+from .schema import choice, describe, load_document, num, read_toml, text
 
 __all__ = [
     "SCHEMA_VERSION", "Profile", "Geometry", "Rotor", "Fluid", "Channel", "Encoder", "Servo",
@@ -267,16 +267,7 @@ class Profile:
 
 def parse_profile(data: dict[str, Any], source: str = "<memory>", text_: str = "") -> Profile:
     """Validate an already-parsed TOML mapping."""
-    if "schema_version" not in data:
-        raise ProfileError(source, "schema_version", "<missing>", f"schema_version = {SCHEMA_VERSION}")
-    version = data["schema_version"]
-    if isinstance(version, bool) or version != SCHEMA_VERSION:
-        raise ProfileError(source, "schema_version", version,
-                           f"{SCHEMA_VERSION} (the only version this flapctl reads)")
-    profile = load_section(Profile, data, source)
-    object.__setattr__(profile, "source", source)
-    object.__setattr__(profile, "text", text_)
-    return profile
+    return load_document(Profile, data, source, text_, SCHEMA_VERSION, "profile")
 
 
 def load_profile(path: str | Path) -> Profile:

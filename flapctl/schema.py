@@ -19,7 +19,7 @@ from typing import Any, TypeVar
 
 from .errors import ProfileError
 
-__all__ = ["num", "choice", "text", "load_section", "describe", "read_toml"]
+__all__ = ["num", "choice", "text", "load_section", "load_document", "describe", "read_toml"]
 
 T = TypeVar("T")
 _MISSING = dataclasses.MISSING
@@ -194,3 +194,19 @@ def read_toml(path: str | Path) -> tuple[dict[str, Any], str]:
         return tomllib.loads(raw), raw
     except tomllib.TOMLDecodeError as exc:
         raise ProfileError(str(path), "<syntax>", str(exc), "valid TOML") from exc
+
+
+def load_document(cls: type[T], data: Mapping[str, Any], source: str, text_: str, version: int,
+                  what: str) -> T:
+    """A whole versioned file: check ``schema_version``, load ``cls`` strictly, and keep the
+    file's name and text on the result (its ``source`` and ``text`` fields, which are not keys)."""
+    if not isinstance(data, Mapping):
+        raise ProfileError(source, "<top>", data, "a table")
+    found = data.get("schema_version", "<missing>")
+    if isinstance(found, bool) or found != version:
+        raise ProfileError(source, "schema_version", found,
+                           f"{version} (the only {what} version this flapctl reads)")
+    obj = load_section(cls, data, source)
+    object.__setattr__(obj, "source", source)
+    object.__setattr__(obj, "text", text_)
+    return obj
