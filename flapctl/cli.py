@@ -366,6 +366,14 @@ def _out_png(args, default: str) -> Path:
     return out
 
 
+def _save_png(args, fig, default: str) -> Path:
+    """Write ``fig`` to --out (or ``default``), never over an existing file, and say where."""
+    out = _out_png(args, default)
+    fig.savefig(out, dpi=110)
+    print(f"plot: {out}")
+    return out
+
+
 def cmd_sim_sweep_tsr(args: argparse.Namespace) -> int:
     import matplotlib.pyplot as plt
     from sim.studies import model_for, sweep_tsr
@@ -403,9 +411,7 @@ def cmd_sim_sweep_tsr(args: argparse.Namespace) -> int:
     ax.set_title(f"{profile.name}: Cp versus TSR ({model.induction}); x = outside model validity")
     ax.grid(alpha=0.3)
     ax.legend()
-    out = _out_png(args, f"cp_tsr_{profile.name}.png")
-    fig.savefig(out, dpi=110)
-    print(f"plot: {out}")
+    _save_png(args, fig, f"cp_tsr_{profile.name}.png")
     return 0
 
 
@@ -438,9 +444,7 @@ def cmd_sim_pitch_sweep(args: argparse.Namespace) -> int:
     a2.set_xlabel("preset pitch (deg, toe-out +)"); a2.set_ylabel("peak Cp"); a2.grid(alpha=0.3)
     fig.suptitle(f"{profile.name}: best fixed pitch")
     fig.tight_layout()
-    out = _out_png(args, f"pitch_sweep_{profile.name}.png")
-    fig.savefig(out, dpi=110)
-    print(f"plot: {out}")
+    _save_png(args, fig, f"pitch_sweep_{profile.name}.png")
     return 0
 
 
@@ -482,9 +486,7 @@ def cmd_sim_convergence(args: argparse.Namespace) -> int:
     a1.legend(fontsize=8)
     fig.suptitle(f"{profile.name}: model independence study at TSR {tsr:g}")
     fig.tight_layout()
-    out = _out_png(args, f"convergence_{profile.name}.png")
-    fig.savefig(out, dpi=110)
-    print(f"plot: {out}")
+    _save_png(args, fig, f"convergence_{profile.name}.png")
     return 0
 
 

@@ -68,19 +68,8 @@ class RecordedRig(RigPorts):
         src = self.samples[self._k]
         if self._k < len(self.samples) - 1:
             self._k += 1
-        s = self._sample
-        s.t_s = src.t_s
-        s.counts = src.counts
-        s.index_latch = src.index_latch
-        s.index_events = src.index_events
-        s.torque_nm = src.torque_nm
-        s.flow_m_s = src.flow_m_s
-        s.thrust_n = src.thrust_n
-        s.telemetry_age_s = src.telemetry_age_s
-        s.flap_deg[:] = src.flap_deg
-        s.servo_current_a[:] = src.servo_current_a
-        s.servo_voltage_v[:] = src.servo_voltage_v
-        return s
+        self._sample.copy_from(src)
+        return self._sample
 
     def command_flaps(self, flap_deg: Sequence[float]) -> None:
         cmd = self.flap_cmd_deg

@@ -48,12 +48,22 @@ class Sample:
         self.servo_voltage_v = [float("nan")] * blades
         self.telemetry_age_s = 0.0               # age of the newest servo telemetry
 
+    #: the rig's own sensors (encoder counter, torque, flow, thrust), as opposed to servo telemetry
+    IO_FIELDS = ("counts", "index_latch", "index_events", "torque_nm", "flow_m_s", "thrust_n")
+
     def copy(self) -> "Sample":
         other = Sample(len(self.flap_deg))
-        for name in self.__slots__:
-            value = getattr(self, name)
-            setattr(other, name, list(value) if isinstance(value, list) else value)
+        other.copy_from(self)
         return other
+
+    def copy_from(self, other: "Sample", fields: tuple[str, ...] | None = None) -> None:
+        """Refill this sample in place from ``other`` (all fields, or just ``fields``)."""
+        for name in self.__slots__ if fields is None else fields:
+            value = getattr(other, name)
+            if isinstance(value, list):
+                getattr(self, name)[:] = value
+            else:
+                setattr(self, name, value)
 
 
 class RigPorts(ABC):

@@ -534,7 +534,7 @@ class CanPorts(RigPorts):
                 oldest = age
         s.telemetry_age_s = oldest
         if self.io is not None and not self.config.io_on_can:
-            self._copy_io(self.io.read())
+            self._sample.copy_from(self.io.read(), Sample.IO_FIELDS)
         return s
 
     def _timeout(self, slot: int, age_s: float) -> None:
@@ -576,14 +576,6 @@ class CanPorts(RigPorts):
         if self._index_seen:
             s.index_latch = self._index_latch_raw
 
-    def _copy_io(self, other: Sample) -> None:
-        s = self._sample
-        s.counts = other.counts
-        s.index_latch = other.index_latch
-        s.index_events = other.index_events
-        s.torque_nm = other.torque_nm
-        s.flow_m_s = other.flow_m_s
-        s.thrust_n = other.thrust_n
 
     # -- send -----------------------------------------------------------------------------------
     def _send(self, layout: FrameLayout, data: bytes, servo: int | None = None) -> None:
