@@ -13,7 +13,6 @@ import statistics
 import time
 
 from .clock import VirtualClock
-from .fluid import fluid_properties
 from .ports import backend_class
 from .profile import Profile
 from .scheduler import Controller
@@ -22,14 +21,11 @@ __all__ = ["run_bench", "tick_costs"]
 
 
 def _build(profile: Profile, schedule, rate_hz: float):
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa)
     period_ns = int(round(1e9 / rate_hz))
-    rig = backend_class("sim")(profile, density_kg_m3=fluid.density_kg_m3,
-                               viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=period_ns * 1e-9)
+    rig = backend_class("sim").for_profile(profile, period_ns * 1e-9)
     clock = VirtualClock(period_ns, rig.step)
-    ctl = Controller(profile, schedule, rig, clock, tsr=f.design_tsr,
-                     density_kg_m3=fluid.density_kg_m3)
+    ctl = Controller(profile, schedule, rig, clock, tsr=profile.fluid.design_tsr,
+                     density_kg_m3=rig.fluid.density_kg_m3)
     return rig, clock, ctl
 
 

@@ -84,7 +84,6 @@ def _signal(args: argparse.Namespace, t: np.ndarray) -> tuple[np.ndarray, str]:
 def _excite_ports(profile, args, dt):
     """(ports, clock, backend) to excite through: the SIL rig, a bridge, or the profile's CAN bus."""
     from .clock import VirtualClock
-    from .fluid import fluid_properties
 
     if args.bridge:
         from .ports.bridge import BridgeClock, BridgeOptions, BridgePorts
@@ -100,12 +99,9 @@ def _excite_ports(profile, args, dt):
         from .rtclock import RealtimeClock
         clock = RealtimeClock(int(round(dt * 1e9)))
         return CanPorts(profile, clock=clock), clock, "can"
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
     from .ports import backend_class
-    rig = backend_class("sim", profile.source)(
-        profile, density_kg_m3=fluid.density_kg_m3, viscosity_m2_s=fluid.kinematic_viscosity_m2_s,
-        dt_s=dt, initial_speed_rad_s=0.0, flow_m_s=args.flow)
+    rig = backend_class("sim", profile.source).for_profile(profile, dt, flow_m_s=args.flow,
+                                                           initial_speed_rad_s=0.0)
     return rig, VirtualClock(int(round(dt * 1e9)), rig.step), f"sim (flow {args.flow:g} m/s)"
 
 

@@ -29,7 +29,6 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from .clock import VirtualClock
-from .fluid import fluid_properties
 from .ports import backend_class
 from .ports.base import RigPorts, Sample
 from .profile import Profile
@@ -88,14 +87,10 @@ def record_sil(profile: Profile, schedule: Schedule, *, rate_hz: float, seconds:
                tsr: float, seed: int | None = None) -> tuple[RecordedRig, NsHistogram, float]:
     """Run the SIL rig in lockstep with the controller; return (replay ports, model step cost
     histogram, fluid density)."""
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
     period_ns = period_ns_for(profile, rate_hz)
-    u = f.design_speed_m_s
-    rig = backend_class("sim", profile.source)(
-        profile, density_kg_m3=fluid.density_kg_m3, viscosity_m2_s=fluid.kinematic_viscosity_m2_s,
-        dt_s=period_ns * 1e-9, flow_m_s=u, initial_speed_rad_s=tsr * u / profile.geometry.radius_m,
-        seed=seed)
+    rig = backend_class("sim", profile.source).for_profile(profile, period_ns * 1e-9, tsr=tsr,
+                                                           seed=seed)
+    fluid = rig.fluid
     step_cost = NsHistogram()
     clock_ns = time.perf_counter_ns
 

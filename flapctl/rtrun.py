@@ -29,7 +29,6 @@ from pathlib import Path
 from typing import Any
 
 from .errors import FlapctlError, ProfileError
-from .fluid import fluid_properties
 from .lead import LeadModel
 from .logproc import ProcessRunLog
 from .ports import backend_class
@@ -228,13 +227,10 @@ def run_paced_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_
     """
     policy = policy if policy is not None else OverrunPolicy(trip_after_consecutive=None)
     period_ns = period_ns_for(profile, rate_hz)
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
-    u = f.design_speed_m_s if flow_m_s is None else flow_m_s
-    rig = backend_class("sim", profile.source)(
-        profile, density_kg_m3=fluid.density_kg_m3, viscosity_m2_s=fluid.kinematic_viscosity_m2_s,
-        dt_s=period_ns * 1e-9, flow_m_s=u, initial_speed_rad_s=tsr * u / profile.geometry.radius_m,
-        seed=seed)
+    u = profile.fluid.design_speed_m_s if flow_m_s is None else flow_m_s
+    rig = backend_class("sim", profile.source).for_profile(profile, period_ns * 1e-9, flow_m_s=u,
+                                                           tsr=tsr, seed=seed)
+    fluid = rig.fluid
     lead = lead if lead is not None else LeadModel.from_control(profile.control)
     clock = RealtimeClock(period_ns, policy=policy, options=options, plant_step=rig.step)
     meta = _metadata(profile, schedule, "sim-paced", tsr=tsr, duration_s=duration_s,

@@ -14,7 +14,6 @@ from pathlib import Path
 
 from .clock import VirtualClock
 from .energy import RunEnergy
-from .fluid import fluid_properties
 from .lead import LeadModel
 from .ports import backend_class
 from .profile import Profile
@@ -72,15 +71,11 @@ def run_sil(profile: Profile, schedule: Schedule, *, tsr: float, duration_s: flo
 
     ``faults`` is a fault scenario (``sim.faults.Scenario``) to inject into the rig.
     """
-    rig_cls = backend_class("sim", profile.source)
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
-    u = f.design_speed_m_s if flow_m_s is None else flow_m_s
+    u = profile.fluid.design_speed_m_s if flow_m_s is None else flow_m_s
     period_ns = int(round(1e9 / profile.control.rate_hz))
-    rig = rig_cls(profile, density_kg_m3=fluid.density_kg_m3,
-                  viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=period_ns * 1e-9, flow_m_s=u,
-                  initial_speed_rad_s=tsr * u / profile.geometry.radius_m, seed=seed,
-                  faults=_injector(faults))
+    rig = backend_class("sim", profile.source).for_profile(
+        profile, period_ns * 1e-9, flow_m_s=u, tsr=tsr, seed=seed, faults=_injector(faults))
+    fluid = rig.fluid
     extra = {"seed": profile.sim.seed if seed is None else seed,
              "kinematic_viscosity_m2_s": fluid.kinematic_viscosity_m2_s,
              "fault_scenario": faults.name if faults is not None else ""}

@@ -33,7 +33,6 @@ from collections.abc import Sequence
 import can
 
 from flapctl.errors import FlapctlError
-from flapctl.fluid import fluid_properties
 from flapctl.ports.can import CanConfig, load_can_config, open_bus
 from flapctl.ports.canframe import FrameLayout
 from flapctl.profile import Profile, load_profile
@@ -53,14 +52,8 @@ def _key(layout: FrameLayout) -> int:
 def build_rig(profile: Profile, *, flow_m_s: float | None = None, tsr: float | None = None,
               seed: int | None = None) -> VirtualRig:
     """The SIL rig at one operating point: flow (m/s, default the design speed) and initial TSR."""
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
-    u = f.design_speed_m_s if flow_m_s is None else flow_m_s
-    tsr = f.design_tsr if tsr is None else tsr
     period_ns = int(round(1e9 / profile.control.rate_hz))
-    return VirtualRig(profile, density_kg_m3=fluid.density_kg_m3,
-                      viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=period_ns * 1e-9,
-                      flow_m_s=u, initial_speed_rad_s=tsr * u / profile.geometry.radius_m, seed=seed)
+    return VirtualRig.for_profile(profile, period_ns * 1e-9, flow_m_s=flow_m_s, tsr=tsr, seed=seed)
 
 
 class _Encoder:

@@ -22,6 +22,7 @@ from collections.abc import Sequence
 import numpy as np
 from dataclasses import dataclass
 
+from flapctl.fluid import fluid_properties
 from flapctl.ports.base import RigPorts, Sample
 from flapctl.profile import Profile
 
@@ -128,6 +129,7 @@ class VirtualRig(RigPorts):
         self.energy = EnergyBooks(kinetic_start_j=0.5 * self.inertia * self.speed_rad_s ** 2,
                                   kinetic_j=0.5 * self.inertia * self.speed_rad_s ** 2)
         self.faults = faults
+        self.fluid = None              # the FluidProperties used, when built by for_profile()
         self.servo_watchdog_s = servo_watchdog_s
         self._last_command_t = 0.0
         self._sample = Sample(g.blades)
@@ -148,6 +150,24 @@ class VirtualRig(RigPorts):
         self._refresh_every = max(1, int(round(0.05 / dt_s)))
         self._steps = 0
         self._fill_sample()
+
+    @classmethod
+    def for_profile(cls, profile: Profile, dt_s: float, *, flow_m_s: float | None = None,
+                    tsr: float | None = None, initial_speed_rad_s: float | None = None,
+                    seed: int | None = None, faults=None) -> "VirtualRig":
+        """The SIL rig of a profile: fluid properties from the profile, mean flow ``flow_m_s``
+        (default the design speed), the rotor started at ``initial_speed_rad_s`` or else at
+        ``tsr`` (default the design TSR).  ``rig.fluid`` holds the properties used."""
+        f = profile.fluid
+        fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
+        u = f.design_speed_m_s if flow_m_s is None else flow_m_s
+        if initial_speed_rad_s is None:
+            initial_speed_rad_s = (f.design_tsr if tsr is None else tsr) * u / profile.geometry.radius_m
+        rig = cls(profile, density_kg_m3=fluid.density_kg_m3,
+                  viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=dt_s, flow_m_s=u,
+                  initial_speed_rad_s=initial_speed_rad_s, seed=seed, faults=faults)
+        rig.fluid = fluid
+        return rig
 
     # -- ports --------------------------------------------------------------------------------
     def read(self) -> Sample:

@@ -32,7 +32,6 @@ from dataclasses import dataclass
 import zmq
 
 from flapctl.errors import FlapctlError
-from flapctl.fluid import fluid_properties
 from flapctl.ports import bridgeproto as bp
 from flapctl.profile import Profile, load_profile
 
@@ -65,13 +64,7 @@ class ServerStats:
 def build_rig(profile: Profile, period_ns: int, *, seed: int | None, flow_m_s: float | None,
               tsr: float | None) -> VirtualRig:
     """The SIL rig exactly as :func:`flapctl.runner.run_sil` builds it (same fluid, seed, start)."""
-    f = profile.fluid
-    fluid = fluid_properties(f.medium, f.temperature_c, f.pressure_pa, source=profile.source)
-    u = f.design_speed_m_s if flow_m_s is None else flow_m_s
-    t = f.design_tsr if tsr is None else tsr
-    return VirtualRig(profile, density_kg_m3=fluid.density_kg_m3,
-                      viscosity_m2_s=fluid.kinematic_viscosity_m2_s, dt_s=period_ns * 1e-9,
-                      flow_m_s=u, initial_speed_rad_s=t * u / profile.geometry.radius_m, seed=seed)
+    return VirtualRig.for_profile(profile, period_ns * 1e-9, flow_m_s=flow_m_s, tsr=tsr, seed=seed)
 
 
 class BridgeServer:
